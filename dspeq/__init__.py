@@ -1,0 +1,43 @@
+"""dspeq — playback de-emphasis for flat tape and disc transfers.
+
+The filter core: analog playback curves (:class:`Curve`, :func:`curve`,
+:func:`curves`), their digital designs (:func:`design`, :class:`Design`),
+deviation checks (:func:`check`, :class:`Deviation`) and a streaming
+:class:`Equalizer`.  Importing dspeq compiles nothing and imports neither
+audio I/O nor plotting libraries.
+
+Examples
+--------
+>>> import numpy as np, dspeq
+>>> d = dspeq.design("riaa", 48000)
+>>> dspeq.check(d).max_abs_db < 0.01
+True
+>>> eq = dspeq.Equalizer(d, channels=2)
+>>> eq.process(np.zeros((256, 2))).shape
+(256, 2)
+"""
+
+from __future__ import annotations
+
+from ._errors import AudioFileError, CurveError, DesignError, DspeqError, ExpressionError, JobError
+from .check import Deviation, check
+from .curves import Curve
+from .design import Design, design, methods
+from .spec import curve, curves
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "Curve", "curve", "curves", "Design", "design", "methods", "check", "Deviation", "Equalizer",
+    "DspeqError", "CurveError", "ExpressionError", "DesignError", "AudioFileError", "JobError",
+    "__version__",
+]
+
+
+def __getattr__(name: str):
+    # The Equalizer pulls in the kernel module; import it on first use only.
+    if name == "Equalizer":
+        from .stream import Equalizer
+
+        return Equalizer
+    raise AttributeError(f"module 'dspeq' has no attribute {name!r}")
