@@ -214,6 +214,17 @@ class Curve:
         meta.setdefault("source", "user expression")
         return cls.from_zpk(z, p, k, reference_hz=reference_hz, gain_db=gain_db, **meta)
 
+    @classmethod
+    def from_network(cls, text: str, **meta) -> Curve:
+        """Exact curve of an analog network described in dspeq's network text.
+
+        See :mod:`dspeq.network` for the format (impedances from R and C values,
+        inverting / non-inverting stages, passive dividers).
+        """
+        from .network import network_curve
+
+        return network_curve(text, **meta)
+
     # ---------------------------------------------------------------- properties
     @property
     def zeros(self) -> np.ndarray:
