@@ -22,7 +22,9 @@ from .curves import DEFAULT_REFERENCE_HZ, Curve, rolloff_db_to_tc
 __all__ = ["CatalogEntry", "CATALOG", "catalog_curve", "catalog_names", "disc_curve",
            "tape_curve", "suggest"]
 
-_IASA_TAPE = "IASA TC-04 §5.4.10 Table 1 (magnetic tape replay equalisation); IEC 60094; NAB 1965"
+_IASA_TAPE = "IASA TC-04 §5.4.10 Table 1 (magnetic tape replay equalisation)"
+_NAB = _IASA_TAPE + "; NAB 1965"
+_IEC = _IASA_TAPE + "; IEC 60094"
 _IASA_DISC = "IASA TC-04 §5.3.6 Table 1 (equalisation curves by name)"
 _RIAA = "RIAA 1954; IEC 60098 (RIAA playback time constants 3180/318/75 µs)"
 
@@ -102,21 +104,21 @@ def _entries() -> list[CatalogEntry]:
                             description=f"Listed in the table as {hist}."))
     # Tape: time constants per IASA TC-04 §5.4.10 Table 1 (via REFERENCES), NAB 1965, IEC 60094.
     e += [
-        tape_curve("iec-30ips", 17.5, None, _IASA_TAPE, "AES / IEC2 (1981), 30 ips (76 cm/s).",
+        tape_curve("iec-30ips", 17.5, None, _IEC, "AES / IEC2 (1981), 30 ips (76 cm/s).",
                    ("aes-30ips",)),
-        tape_curve("ccir-30ips", 35.0, None, _IASA_TAPE, "CCIR / IEC1, 30 ips (76 cm/s)."),
-        tape_curve("iec-15ips", 35.0, None, _IASA_TAPE, "IEC1 / CCIR / DIN, 15 ips (38 cm/s).",
+        tape_curve("ccir-30ips", 35.0, None, _IEC, "CCIR / IEC1, 30 ips (76 cm/s)."),
+        tape_curve("iec-15ips", 35.0, None, _IEC, "IEC1 / CCIR / DIN, 15 ips (38 cm/s).",
                    ("ccir-15ips",)),
-        tape_curve("nab-15ips", 50.0, 3180.0, _IASA_TAPE, "NAB, 15 ips (38 cm/s)."),
-        tape_curve("iec-7.5ips", 70.0, None, _IASA_TAPE, "IEC1 / CCIR, 7½ ips (19 cm/s).",
+        tape_curve("nab-15ips", 50.0, 3180.0, _NAB, "NAB, 15 ips (38 cm/s)."),
+        tape_curve("iec-7.5ips", 70.0, None, _IEC, "IEC1 / CCIR, 7½ ips (19 cm/s).",
                    ("ccir-7.5ips",)),
-        tape_curve("nab-7.5ips", 50.0, 3180.0, _IASA_TAPE, "NAB / IEC2, 7½ ips (19 cm/s).",
+        tape_curve("nab-7.5ips", 50.0, 3180.0, _NAB, "NAB / IEC2, 7½ ips (19 cm/s).",
                    ("iec2-7.5ips",)),
         tape_curve("ccir1950-7.5ips", 100.0, None, _IASA_TAPE, "Older CCIR, 7½ ips (19 cm/s)."),
-        tape_curve("nab-3.75ips", 90.0, 3180.0, _IASA_TAPE, "NAB / IEC2, 3¾ ips (9.5 cm/s).",
+        tape_curve("nab-3.75ips", 90.0, 3180.0, _NAB, "NAB / IEC2, 3¾ ips (9.5 cm/s).",
                    ("iec-3.75ips",)),
         tape_curve("din1962-3.75ips", 120.0, 3180.0, _IASA_TAPE, "DIN 1962, 3¾ ips (9.5 cm/s)."),
-        tape_curve("iec1962-3.75ips", 140.0, 3180.0, _IASA_TAPE, "IEC 1962-68, 3¾ ips (9.5 cm/s)."),
+        tape_curve("iec1962-3.75ips", 140.0, 3180.0, _IEC, "IEC 1962-68, 3¾ ips (9.5 cm/s)."),
         tape_curve("nab-1.875ips", 120.0, 3180.0, "from memory (common practice: 1⅞ ips open reel "
                    "shares the 3180/120 µs cassette Type I values)", "NAB / IEC, 1⅞ ips (4.75 cm/s).",
                    ("iec-1.875ips",)),

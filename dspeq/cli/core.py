@@ -1,0 +1,163 @@
+"""Core sub-commands: ``curves``, ``design``, ``check``, ``compare`` and ``verify``."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+
+from ._common import add_curve_args, add_design_args, curve_from_args, design_from_args, fail, print_table
+
+__all__ = ["register"]
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    """Add the core commands to the ``dspeq`` parser."""
+    p = sub.add_parser("curves", help="list the built-in playback curves",
+                       description="List the built-in curves: name, kind, time constants, source.")
+    p.add_argument("--format", choices=("table", "json"), default="table")
+    p.add_argument("--kind", choices=("disc", "tape"), help="only curves of this kind")
+    p.set_defaults(func=cmd_curves)
+
+    p = sub.add_parser("design", help="print the digital coefficients (SOS) of a curve",
+                       description="Design a curve at a sample rate and print its coefficients.")
+    add_curve_args(p)
+    add_design_args(p)
+    p.add_argument("--format", choices=("json", "csv", "c"), default="json",
+                   help="json (sos, rate, deviation), csv (one section per line) or c (C99 header)")
+    p.add_argument("--name", help="identifier prefix for --format c")
+    p.set_defaults(func=cmd_design)
+
+    p = sub.add_parser("check", help="measure a design's deviation from the analog curve",
+                       description="Deviation of a design from its analog curve; exit 1 when the "
+                                   "largest magnitude error exceeds --tolerance.")
+    add_curve_args(p)
+    add_design_args(p)
+    _add_band(p)
+    p.add_argument("--tolerance", type=float, default=0.01, metavar="DB",
+                   help="largest allowed magnitude error in dB (default 0.01)")
+    p.add_argument("--format", choices=("table", "json"), default="table")
+    p.add_argument("--plot", metavar="PNG", help="also draw curve, error and phase error to PNG")
+    p.set_defaults(func=cmd_check)
+
+    p = sub.add_parser("compare", help="every design method side by side",
+                       description="Every discretization method for one curve and rate: largest "
+                                   "error, where, phase error after delay removal, order.")
+    add_curve_args(p)
+    add_design_args(p, method=False)
+    _add_band(p)
+    p.add_argument("--format", choices=("table", "json"), default="table")
+    p.add_argument("--plot", metavar="PNG", help="also draw all methods to PNG")
+    p.set_defaults(func=cmd_compare)
+
+
+def _add_band(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--band", nargs=2, type=float, default=(20.0, 20000.0), metavar=("LO", "HI"),
+                   help="frequency band in Hz (default 20 20000; upper edge limited to 0.95·Nyquist)")
+
+
+def _tc_text(values) -> str:
+    return ",".join("inf" if v is None or math.isinf(v) else f"{v:.4g}" for v in values) or "-"
+
+
+def cmd_curves(args: argparse.Namespace) -> int:
+    from ..spec import curves
+
+    rows = [c for c in curves() if args.kind in (None, c["kind"])]
+    if args.format == "json":
+        json.dump(rows, sys.stdout, indent=2, default=str)
+        print()
+        return 0
+    table = [[c["name"], c["kind"], _tc_text(c["zeros_us"]), _tc_text(c["poles_us"]),
+              c["source"].split(";")[0]] for c in rows]
+    print_table(table, ["name", "kind", "zeros µs", "poles µs", "source (full text: --format json)"])
+    return 0
+
+
+def cmd_design(args: argparse.Namespace) -> int:
+    from .. import export
+
+    d = design_from_args(args)
+    if args.format == "csv":
+        sys.stdout.write(export.design_to_csv(d))
+    elif args.format == "c":
+        sys.stdout.write(export.design_to_c(d, args.name))
+    else:
+        json.dump(export.design_to_json(d), sys.stdout, indent=2)
+        print()
+    return 0
+
+
+def _summary_rows(dev) -> list[list[str]]:
+    s = dev.summary()
+    return [["band", f"{s['band_lo_hz']:g}–{s['band_hi_hz']:g} Hz"],
+            ["max |error|", f"{s['max_abs_db']:.5f} dB at {s['f_at_max_hz']:.0f} Hz"],
+            ["RMS error", f"{s['rms_db']:.5f} dB"],
+            ["delay removed", f"{s['delay_samples']:.4f} samples"],
+            ["phase error", f"{s['max_phase_deg_to_10k']:.3f}° to 10 kHz, {s['max_phase_deg']:.3f}° in band"],
+            ["group delay error", f"{s['max_group_delay_error_us']:.3f} µs"]]
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    from ..check import check
+
+    d = design_from_args(args)
+    dev = check(d, tuple(args.band))
+    if args.format == "json":
+        json.dump({"curve": d.curve.name, "rate": d.fs, "method": d.method, "sections": len(d.sos),
+                   "tolerance_db": args.tolerance, "ok": dev.ok(args.tolerance), **dev.summary()},
+                  sys.stdout, indent=2)
+        print()
+    else:
+        print(f"{d.curve.name} at {d.fs:g} Hz, method {d.method}, {len(d.sos)} section(s)")
+        print_table(_summary_rows(dev), ["measure", "value"])
+    if args.plot:
+        from ..plot import plot_designs
+
+        plot_designs([d], args.plot, band=tuple(args.band))
+        print(f"plot written to {args.plot}", file=sys.stderr)
+    if not dev.ok(args.tolerance):
+        return fail(f"largest error {dev.max_abs_db:.4g} dB exceeds the tolerance {args.tolerance:g} dB", 1)
+    return 0
+
+
+def cmd_compare(args: argparse.Namespace) -> int:
+    import warnings
+
+    from ..check import check
+    from ..design import methods
+
+    designs, rows, records = [], [], []
+    curve = curve_from_args(args)
+    variants = [(name, name, {}) for name in methods()]
+    variants.insert(1, ("bilinear@1k", "bilinear", {"prewarp_hz": 1000.0}))
+    for name, method, options in variants:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            d = design_from_args(args, method=method, **options)
+        dev = check(d, tuple(args.band))
+        designs.append(d)
+        rec = {"method": name, "sections": len(d.sos), "order": d.order, **dev.summary(),
+               "warnings": [str(w.message) for w in caught]}
+        records.append(rec)
+        rows.append([name, str(d.order), f"{dev.max_abs_db:.5f}", f"{dev.f_at_max:.0f}",
+                     f"{dev.max_phase_below(10_000.0):.3f}", f"{dev.max_phase_deg:.3f}",
+                     f"{dev.delay_samples:.3f}"])
+    if args.format == "json":
+        json.dump({"curve": curve.name, "rate": args.rate, "methods": records}, sys.stdout, indent=2)
+        print()
+    else:
+        print(f"{curve.name} ({curve.describe_roots()}) at {args.rate:g} Hz, "
+              f"band {args.band[0]:g}–{args.band[1]:g} Hz")
+        print_table(rows, ["method", "order", "max |dB|", "at Hz", "phase° ≤10k", "phase° band",
+                           "delay smp"])
+        for rec in records:
+            for w in rec["warnings"]:
+                print(f"note ({rec['method']}): {w}", file=sys.stderr)
+    if args.plot:
+        from ..plot import plot_designs
+
+        plot_designs(designs, args.plot, band=tuple(args.band))
+        print(f"plot written to {args.plot}", file=sys.stderr)
+    return 0
