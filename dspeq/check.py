@@ -11,7 +11,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import signal
 
 from ._errors import DesignError
 
@@ -36,17 +35,19 @@ def band_for_rate(band: tuple[float, float], fs: float) -> tuple[float, float]:
 
 
 def digital_group_delay(sos: np.ndarray, f: np.ndarray, fs: float) -> np.ndarray:
-    """Exact group delay (samples) of an SOS cascade at ``f`` (Hz), from its roots.
+    """Exact group delay (samples) of an SOS cascade at ``f`` (Hz).
 
-    For a root r: d/dω angle(e^{jω} − r) = Re(e^{jω} / (e^{jω} − r)).
+    For a polynomial P(z⁻¹) = Σ cₙ·z⁻ⁿ the group delay is Re(Σ n·cₙ·e^{−jωn} / Σ cₙ·e^{−jωn});
+    a section contributes that of its numerator minus that of its denominator.
+    (Computed from the coefficients, not the roots, so a pure delay b = [0, 1, 0] counts.)
     """
-    z, p, _ = signal.sos2zpk(sos)
-    e = np.exp(2j * np.pi * np.asarray(f, dtype=float) / fs)
-    tau = np.zeros(e.shape)
-    for r in p:
-        tau = tau + np.real(e / (e - r))
-    for r in z:
-        tau = tau - np.real(e / (e - r))
+    w = 2 * np.pi * np.asarray(f, dtype=float) / fs
+    powers = np.exp(-1j * np.outer(w, np.arange(3)))          # (n_freqs, 3)
+    n = np.arange(3)
+    tau = np.zeros(w.shape)
+    for row in np.asarray(sos, dtype=float):
+        for coeffs, sign in ((row[:3], 1.0), (row[3:], -1.0)):
+            tau = tau + sign * np.real((powers @ (n * coeffs)) / (powers @ coeffs))
     return tau
 
 

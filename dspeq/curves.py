@@ -387,8 +387,8 @@ class Curve:
         Examples
         --------
         >>> c = Curve.from_time_constants([50], [3180])
-        >>> c.at_speed(2).time_constants()
-        ([25.0], [1590.0])
+        >>> print(c.at_speed(2).tc_spec())
+        tc:25/1590
         """
         r = float(ratio)
         if not (r > 0 and math.isfinite(r)):
