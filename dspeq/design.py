@@ -92,6 +92,13 @@ class Design:
     options: dict[str, Any]
 
     @property
+    def label(self) -> str:
+        """Method name plus its non-default options, e.g. ``bilinear(prewarp_hz=1000)``."""
+        extra = ", ".join(f"{k}={v:g}" if isinstance(v, float) else f"{k}={v}"
+                          for k, v in self.options.items() if k != "lf_limit_hz")
+        return f"{self.method}({extra})" if extra else self.method
+
+    @property
     def zpk(self) -> Zpk:
         """Digital zeros, poles and gain of the cascade."""
         return signal.sos2zpk(self.sos)
