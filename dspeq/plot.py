@@ -8,8 +8,6 @@ from __future__ import annotations
 from collections.abc import Sequence
 from pathlib import Path
 
-import numpy as np
-
 from ._errors import DspeqError
 from .check import DEFAULT_BAND, check
 
