@@ -35,7 +35,8 @@ __all__ = [
 
 
 def __getattr__(name: str):
-    # The Equalizer pulls in the kernel module; import it on first use only.
+    # The Equalizer pulls in numba (the kernels); import it on first use only.  The other core
+    # modules import only numpy at module level (scipy is imported inside the functions that use it).
     if name == "Equalizer":
         from .stream import Equalizer
 

@@ -15,7 +15,6 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy import signal
 
 from ._errors import DesignError
 from .curves import Curve
@@ -101,6 +100,8 @@ class Design:
     @property
     def zpk(self) -> Zpk:
         """Digital zeros, poles and gain of the cascade."""
+        from scipy import signal
+
         return signal.sos2zpk(self.sos)
 
     @property
@@ -112,6 +113,8 @@ class Design:
     def response(self, f: np.ndarray | float) -> np.ndarray:
         """Complex frequency response at ``f`` (Hz)."""
         f = np.atleast_1d(np.asarray(f, dtype=float))
+        from scipy import signal
+
         _, h = signal.sosfreqz(self.sos, worN=f, fs=self.fs)
         return h
 
@@ -210,6 +213,8 @@ def design(curve: Curve | str, fs: float, method: str = DEFAULT_METHOD, *,
         raise DesignError(f"method {method!r}: {exc}") from None
     z, p = np.asarray(z, dtype=complex), np.asarray(p, dtype=complex)
     _check_stable(z, p, float(k), method)
+    from scipy import signal  # imported here: `import dspeq` stays light
+
     sos = np.ascontiguousarray(signal.zpk2sos(z, p, float(k)), dtype=np.float64)
     sos.setflags(write=False)
     d = Design(sos, rate, method, c, target, {"lf_limit_hz": float(lf_limit_hz), **options})
@@ -243,6 +248,8 @@ def _bilinear(curve: Curve, fs: float, prewarp_hz: float | None = None) -> Zpk:
         if not (0 < prewarp_hz < fs / 2):
             raise DesignError(f"prewarp frequency {prewarp_hz!r} Hz must lie between 0 and fs/2")
         fs_eff = w0 / (2.0 * math.tan(w0 / (2.0 * fs)))
+    from scipy import signal
+
     return signal.bilinear_zpk(curve.zeros, curve.poles, curve.gain, fs_eff)
 
 
