@@ -1,0 +1,551 @@
+"""Audio files for the batch processor: open, read in blocks, check, quantize, write.
+
+* :class:`Source` opens an original read-only, reads it in fixed-size blocks
+  into one reused buffer, and detects a truncated file (frames read versus
+  frames declared by the container header) and decoder errors.
+* :func:`resolve_output` chooses the output container and encoding (the
+  input's by default) and switches a WAV that would pass 4 GiB to RF64.
+* :class:`Spool` keeps the first-pass (filtered) samples of the peak-safe
+  level mode for the second pass: in memory under a budget, else in a raw
+  temporary file beside the output, so the input is decoded only once.
+* :class:`Sink` writes to a temporary name in the output folder, quantizes
+  integer output itself with seeded TPDF dither (via
+  :func:`dspeq._kernels.quantize_tpdf`, counting clipped samples), keeps an
+  MD5 of the samples as written, and on :meth:`Sink.commit` adds the
+  provenance metadata and renames the file to its final name.
+
+The sample MD5 follows FLAC's STREAMINFO convention: interleaved samples,
+signed little-endian integers of the output word length (8-bit output is
+hashed as signed), or the IEEE float bytes for float output.  For FLAC
+output it therefore equals the MD5 that the FLAC encoder stores.
+
+soundfile is imported inside the functions that need it.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import secrets
+import struct
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .._errors import AudioFileError, JobError
+from . import bwf
+
+__all__ = [
+    "AUDIO_EXTENSIONS", "OUTPUT_FORMATS", "SUBTYPES", "TEMP_SUFFIX", "OutputSpec", "Source", "Sink",
+    "Spool", "Quantizer", "resolve_output", "output_suffix", "sha256_file", "declared_frames",
+    "remove_stale_temps", "temp_path", "RF64_THRESHOLD",
+]
+
+#: File name endings (lower case) taken as audio when scanning an input tree.
+AUDIO_EXTENSIONS = frozenset({".wav", ".wave", ".bwf", ".rf64", ".w64", ".flac", ".aif", ".aiff",
+                              ".aifc"})
+#: Our output format names -> (libsndfile major format, file name ending).
+OUTPUT_FORMATS = {"wav": ("WAV", ".wav"), "wavex": ("WAVEX", ".wav"), "rf64": ("RF64", ".wav"),
+                  "w64": ("W64", ".w64"), "flac": ("FLAC", ".flac"), "aiff": ("AIFF", ".aiff")}
+#: Our encoding names -> bits (None for float).
+SUBTYPES = {"int8": 8, "int16": 16, "int24": 24, "int32": 32, "float32": None, "float64": None}
+_SF_SUBTYPE = {"int16": "PCM_16", "int24": "PCM_24", "int32": "PCM_32", "float32": "FLOAT",
+               "float64": "DOUBLE"}
+_FROM_SF_SUBTYPE = {"PCM_S8": "int8", "PCM_U8": "int8", "PCM_16": "int16", "PCM_24": "int24",
+                    "PCM_32": "int32", "FLOAT": "float32", "DOUBLE": "float64"}
+#: What "same" becomes when the container cannot hold the input's encoding.
+_FALLBACK = {"flac": "int24"}
+_INPUT_FORMATS = {"WAV": "wav", "WAVEX": "wavex", "RF64": "rf64", "W64": "w64", "FLAC": "flac",
+                  "AIFF": "aiff"}
+#: A RIFF WAV output estimated above this many bytes is written as RF64 (4 GiB less 1 MiB
+#: of room for headers and the bext chunk).
+RF64_THRESHOLD = 2**32 - 2**20
+#: Temporary outputs are hidden files ``.<final name>.<token><TEMP_SUFFIX>`` in the output folder.
+TEMP_SUFFIX = ".dspeq-part"
+_HASH_CHUNK = 1 << 20
+
+
+def sha256_file(path: str | os.PathLike) -> tuple[str, int]:
+    """SHA-256 (hex) and size in bytes of a file, read in 1 MiB chunks."""
+    h = hashlib.sha256()
+    size = 0
+    buf = bytearray(_HASH_CHUNK)
+    view = memoryview(buf)
+    with open(path, "rb", buffering=0) as f:
+        while n := f.readinto(buf):
+            h.update(view[:n])
+            size += n
+    return h.hexdigest(), size
+
+
+# ----------------------------------------------------------------------------- output format
+@dataclass(frozen=True)
+class OutputSpec:
+    """How an output file is written.
+
+    Attributes
+    ----------
+    container, subtype : str
+        Our names (``"flac"``, ``"int24"`` …).
+    sf_format, sf_subtype : str
+        The libsndfile names.
+    bits : int or None
+        Integer word length, None for float output.
+    note : str
+        Why the format differs from what was asked, if it does.
+    """
+
+    container: str
+    subtype: str
+    sf_format: str
+    sf_subtype: str
+    bits: int | None
+    note: str = ""
+
+    @property
+    def is_float(self) -> bool:
+        return self.bits is None
+
+    @property
+    def bytes_per_sample(self) -> int:
+        return (self.bits or (64 if self.subtype == "float64" else 32)) // 8
+
+
+def output_suffix(output_format: str, input_path: str | os.PathLike) -> str:
+    """File name ending of the output: the input's own for ``"same"``."""
+    if output_format == "same":
+        return Path(input_path).suffix
+    return OUTPUT_FORMATS[output_format][1]
+
+
+def _sf_subtype(subtype: str, container: str) -> str:
+    if subtype == "int8":
+        return "PCM_U8" if container in ("wav", "wavex", "rf64", "w64") else "PCM_S8"
+    return _SF_SUBTYPE[subtype]
+
+
+def resolve_output(output_format: str, subtype: str, source: Source) -> OutputSpec:
+    """The output format for ``source`` under the settings ``output_format``/``subtype``.
+
+    ``"same"`` keeps the input's container or encoding; an encoding the
+    container cannot hold (float or 32-bit in FLAC) becomes int24, and a
+    WAV/WAVEX output estimated above 4 GiB becomes RF64 (both noted).
+
+    Raises
+    ------
+    JobError
+        If an explicitly asked combination is impossible.
+    """
+    import soundfile as sf
+
+    notes = []
+    container = source.container if output_format == "same" else output_format
+    if subtype == "same":
+        sub = _FROM_SF_SUBTYPE.get(source.subtype)
+        if sub is None:
+            sub = "int16"
+            notes.append(f"input encoding {source.subtype} written as int16")
+        if not sf.check_format(OUTPUT_FORMATS[container][0], _sf_subtype(sub, container)):
+            notes.append(f"{container} cannot hold {sub}; written as {_FALLBACK.get(container, 'int24')}")
+            sub = _FALLBACK.get(container, "int24")
+    else:
+        sub = subtype
+    if container in ("wav", "wavex"):
+        estimate = source.frames * source.channels * (SUBTYPES[sub] or 32) // 8
+        if sub == "float64":
+            estimate *= 2
+        if estimate > RF64_THRESHOLD:
+            notes.append(f"estimated {estimate} bytes exceed a RIFF file's 4 GiB: written as RF64")
+            container = "rf64"
+    sf_format, sf_sub = OUTPUT_FORMATS[container][0], _sf_subtype(sub, container)
+    if not sf.check_format(sf_format, sf_sub):
+        raise JobError(f"output format {container!r} cannot hold subtype {sub!r}")
+    return OutputSpec(container, sub, sf_format, sf_sub, SUBTYPES[sub], "; ".join(notes))
+
+
+# ----------------------------------------------------------------------------- declared length
+def _riff_declared(path: str) -> tuple[int, int] | None:
+    layout = bwf.walk_riff(path)
+    fmt, data = layout.find(b"fmt "), layout.find(b"data")
+    if fmt is None or data is None:
+        return None
+    with open(path, "rb") as f:
+        f.seek(fmt.data_offset + 12)
+        (block_align,) = struct.unpack("<H", f.read(2))
+    if block_align == 0 or (layout.form == b"RIFF" and data.size in (0, 0xFFFFFFFF)):
+        return None   # unfinalized stream: no declared length to check against
+    return data.size // block_align, layout.present_bytes(data) // block_align
+
+
+def _w64_declared(path: str) -> tuple[int, int] | None:
+    size = os.path.getsize(path)
+    block_align = None
+    with open(path, "rb") as f:
+        pos = 40
+        while pos + 24 <= size:
+            f.seek(pos)
+            guid, length = struct.unpack("<16sQ", f.read(24))
+            if guid[:4] == b"fmt ":
+                block_align = struct.unpack("<12xH", f.read(14))[0]
+            elif guid[:4] == b"data" and block_align:
+                declared = length - 24
+                return declared // block_align, max(0, min(declared, size - pos - 24)) // block_align
+            if length < 24:
+                return None
+            pos += (length + 7) & ~7
+    return None
+
+
+def _aiff_declared(path: str) -> tuple[int, int] | None:
+    size = os.path.getsize(path)
+    frames = frame_bytes = None
+    with open(path, "rb") as f:
+        pos = 12
+        while pos + 8 <= size:
+            f.seek(pos)
+            cid, length = struct.unpack(">4sI", f.read(8))
+            if cid == b"COMM":
+                channels, frames, bits = struct.unpack(">hIh", f.read(8))
+                frame_bytes = channels * ((bits + 7) // 8)
+            elif cid == b"SSND" and frames is not None and frame_bytes:
+                (offset,) = struct.unpack(">I", f.read(4))
+                present = max(0, min(length - 8, size - pos - 16) - offset)
+                return frames, present // frame_bytes
+            pos += 8 + length + (length & 1)
+    return None
+
+
+_DECLARED = {"wav": _riff_declared, "wavex": _riff_declared, "rf64": _riff_declared,
+             "w64": _w64_declared, "aiff": _aiff_declared}
+
+
+def declared_frames(path: str | os.PathLike, container: str) -> tuple[int, int] | None:
+    """(frames declared by the header, frames the file holds), or None if not knowable.
+
+    For WAV/WAVEX/RF64, W64 and AIFF the header's data size is compared with
+    the bytes present; libsndfile itself silently shortens a truncated file.
+    FLAC is checked while decoding instead (STREAMINFO total vs frames read).
+    """
+    parse = _DECLARED.get(container)
+    if parse is None:
+        return None
+    try:
+        return parse(os.fspath(path))
+    except (ValueError, struct.error):
+        return None
+
+
+# ----------------------------------------------------------------------------- reading
+def _describe_decoder_error(exc: Exception) -> str:
+    return str(exc).strip().removeprefix("Error : ").strip() or type(exc).__name__
+
+
+class Source:
+    """An original audio file, opened read-only and read in blocks.
+
+    Parameters
+    ----------
+    path : path-like
+        The file.
+
+    Raises
+    ------
+    AudioFileError
+        Empty file, not readable as audio, unsupported container, or a header
+        that declares more audio than the file holds.
+    """
+
+    def __init__(self, path: str | os.PathLike):
+        import soundfile as sf
+
+        self.path = os.fspath(path)
+        if os.path.getsize(self.path) == 0:
+            raise AudioFileError(f"empty file (0 bytes): {self.path!r}")
+        try:
+            self._sf = sf.SoundFile(self.path, "r")
+        except (sf.LibsndfileError, RuntimeError, TypeError) as exc:
+            raise AudioFileError(f"not readable as audio ({_describe_decoder_error(exc)}): "
+                                 f"{self.path!r}") from None
+        self.container = _INPUT_FORMATS.get(self._sf.format)
+        self.subtype = self._sf.subtype
+        self.rate = float(self._sf.samplerate)
+        self.channels = int(self._sf.channels)
+        self.frames = int(self._sf.frames)
+        self.frames_read = 0
+        if self.container is None:
+            self.close()
+            raise AudioFileError(f"unsupported container {self._sf.format!r}: {self.path!r}")
+        self._check_declared()
+
+    def _check_declared(self) -> None:
+        extent = declared_frames(self.path, self.container)
+        if extent is None:
+            return
+        declared, present = extent
+        self.frames = declared
+        if present < declared:
+            self.close()
+            raise AudioFileError(self._short_message(present))
+
+    def _short_message(self, got: int) -> str:
+        missing = self.frames - got
+        return (f"truncated: the header declares {self.frames} frames but only {got} are present "
+                f"({missing / self.rate:.3f} s missing): {self.path!r}")
+
+    @property
+    def is_float(self) -> bool:
+        return self.subtype in ("FLOAT", "DOUBLE")
+
+    @property
+    def duration_s(self) -> float:
+        return self.frames / self.rate
+
+    def blocks(self, block_frames: int, dtype: np.dtype) -> Iterator[np.ndarray]:
+        """Yield consecutive blocks (frames × channels) from one reused buffer.
+
+        After the last block, the frames read are compared with the frames
+        declared; a shortfall or a decoder error raises :class:`AudioFileError`.
+        """
+        import soundfile as sf
+
+        buf = np.empty((int(block_frames), self.channels), dtype=dtype)
+        while True:
+            try:
+                block = self._sf.read(len(buf), dtype=buf.dtype.name, always_2d=True, out=buf)
+            except (sf.LibsndfileError, RuntimeError) as exc:
+                raise AudioFileError(f"decoder error after {self.frames_read} frames "
+                                     f"({_describe_decoder_error(exc)}): {self.path!r}") from None
+            if len(block) == 0:
+                break
+            self.frames_read += len(block)
+            yield block
+        if self.frames_read < self.frames:
+            raise AudioFileError(self._short_message(self.frames_read))
+
+    def read_history(self) -> tuple[str, int]:
+        """(CodingHistory text, BWF time reference) carried by the original, if any."""
+        try:
+            if self.container in ("wav", "wavex", "rf64"):
+                bext = bwf.read_bext(self.path)
+                return (bext.coding_history, bext.time_reference) if bext else ("", 0)
+            if self.container == "flac":
+                tags = dict(bwf.read_flac_tags(self.path))
+                return tags.get("CODINGHISTORY", ""), 0
+        except (ValueError, struct.error, OSError):
+            pass
+        return "", 0
+
+    def close(self) -> None:
+        self._sf.close()
+
+    def __enter__(self) -> Source:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
+# ----------------------------------------------------------------------------- first-pass spool
+class Spool:
+    """First-pass samples kept for the second pass of the peak-safe level mode.
+
+    Up to ``budget_bytes`` the samples stay in memory; beyond that they go
+    to a raw file (native float32/float64, no header) beside the output,
+    written and read sequentially so that memory stays constant.
+    """
+
+    def __init__(self, frames: int, channels: int, dtype: np.dtype, budget_bytes: int, raw_path: Path):
+        self.dtype = np.dtype(dtype)
+        self.channels = int(channels)
+        self.frames = 0
+        self._raw_path = raw_path
+        self._file = None
+        self._mem = None
+        if frames * channels * self.dtype.itemsize <= budget_bytes:
+            self._mem = np.empty((frames, channels), dtype=self.dtype)
+        else:
+            self._file = open(raw_path, "w+b")  # noqa: SIM115 - closed in close()
+
+    @property
+    def on_disk(self) -> bool:
+        return self._file is not None
+
+    def append(self, block: np.ndarray) -> None:
+        n = len(block)
+        if self._mem is not None and self.frames + n > len(self._mem):
+            self._mem = np.concatenate([self._mem[:self.frames], np.empty_like(block)])
+        if self._mem is not None:
+            self._mem[self.frames:self.frames + n] = block
+        else:
+            self._file.write(np.ascontiguousarray(block, dtype=self.dtype).data)
+        self.frames += n
+
+    def blocks(self, block_frames: int) -> Iterator[np.ndarray]:
+        """Yield the kept samples again, in blocks."""
+        if self._mem is not None:
+            for start in range(0, self.frames, block_frames):
+                yield self._mem[start:min(start + block_frames, self.frames)]
+            return
+        self._file.flush()
+        self._file.seek(0)
+        buf = np.empty((int(block_frames), self.channels), dtype=self.dtype)
+        raw = memoryview(buf).cast("B")
+        frame_bytes = self.channels * self.dtype.itemsize
+        while got := self._file.readinto(raw):
+            yield buf[:got // frame_bytes]
+
+    def close(self) -> None:
+        self._mem = None
+        if self._file is not None:
+            self._file.close()
+            self._file = None
+            _unlink(self._raw_path)
+
+
+def _unlink(path: str | os.PathLike) -> None:
+    try:
+        os.unlink(path)
+    except FileNotFoundError:
+        pass
+
+
+# ----------------------------------------------------------------------------- quantize + write
+class Quantizer:
+    """Gain, seeded TPDF dither, rounding and clip counting for integer output.
+
+    Parameters
+    ----------
+    bits : int
+        Output word length (8, 16, 24 or 32).
+    gain : float
+        Linear gain applied before quantization.
+    seed : int
+        Dither seed; one generator runs across all blocks of a file.
+    """
+
+    def __init__(self, bits: int, gain: float, seed: int):
+        from .. import _kernels
+
+        self._kernels = _kernels
+        self.bits, self.gain, self.seed = int(bits), float(gain), int(seed)
+        self._state = _kernels.seed_state(self.seed)
+        self._out = np.empty((0, 0), dtype=np.int32)
+        self.clips = 0
+        self.peak = 0.0
+
+    def __call__(self, y: np.ndarray) -> np.ndarray:
+        """The int32 (left-justified) samples of block ``y``; counts clips and peak."""
+        if self._out.shape != y.shape:
+            self._out = np.empty(y.shape, dtype=np.int32)
+        clips, peak = self._kernels.quantize_tpdf(y, self.gain, self.bits, self._state, self._out)
+        self.clips += clips
+        self.peak = max(self.peak, peak)
+        return self._out
+
+
+def _sample_bytes(block: np.ndarray, bits: int | None) -> memoryview:
+    """The bytes hashed for the sample MD5 (FLAC STREAMINFO convention)."""
+    if bits is None or bits == 32:
+        return memoryview(np.ascontiguousarray(block)).cast("B")
+    width = bits // 8
+    raw = block.view(np.uint8).reshape(-1, 4)[:, 4 - width:]
+    return memoryview(np.ascontiguousarray(raw)).cast("B")
+
+
+def temp_path(final_path: Path, kind: str = "") -> Path:
+    """A fresh hidden temporary name beside ``final_path`` (``kind`` is appended to it)."""
+    return final_path.with_name(f".{final_path.name}.{secrets.token_hex(4)}{TEMP_SUFFIX}{kind}")
+
+
+def remove_stale_temps(final_path: Path) -> int:
+    """Delete temporary files a killed earlier run left for ``final_path``; return how many."""
+    count = 0
+    for stale in final_path.parent.glob(f".{_glob_escape(final_path.name)}.*{TEMP_SUFFIX}*"):
+        _unlink(stale)
+        count += 1
+    return count
+
+
+def _glob_escape(name: str) -> str:
+    return "".join(f"[{c}]" if c in "*?[" else c for c in name)
+
+
+class Sink:
+    """An output file written under a temporary name, renamed when complete.
+
+    Parameters
+    ----------
+    final_path : Path
+        Where the finished file goes; its folder must exist.
+    spec : OutputSpec
+        Container and encoding.
+    rate, channels : float, int
+        As the input.
+    quantizer : Quantizer or None
+        Required for integer output; float output is written as is (times
+        ``gain``).
+    gain : float
+        Linear gain for float output.
+    flac_tags : list of (str, str), optional
+        Vorbis comments for FLAC output (room is reserved while encoding).
+    """
+
+    def __init__(self, final_path: Path, spec: OutputSpec, rate: float, channels: int,
+                 quantizer: Quantizer | None, gain: float = 1.0,
+                 flac_tags: list[tuple[str, str]] | None = None):
+        import soundfile as sf
+
+        self.final_path = Path(final_path)
+        self.spec = spec
+        self.quantizer = quantizer
+        self.gain = float(gain)
+        self.flac_tags = flac_tags or []
+        self.temp_path = temp_path(self.final_path)
+        self.peak = 0.0
+        self._md5 = hashlib.md5()
+        self._float_dtype = np.float64 if spec.subtype == "float64" else np.float32
+        self._sf = sf.SoundFile(self.temp_path, "w", int(round(rate)), int(channels),
+                                spec.sf_subtype, format=spec.sf_format)
+        if spec.container == "flac" and self.flac_tags:
+            self._sf.comment = bwf.flac_placeholder(self.flac_tags)
+
+    def write(self, y: np.ndarray) -> None:
+        """Quantize (integer output) or scale (float output) block ``y`` and write it."""
+        from .._kernels import peak_abs
+
+        if self.quantizer is not None:
+            data = self.quantizer(y)
+        else:
+            data = np.multiply(y, self.gain, dtype=self._float_dtype)
+            self.peak = max(self.peak, peak_abs(data))
+        self._md5.update(_sample_bytes(data, self.spec.bits))
+        self._sf.write(data)
+
+    @property
+    def audio_md5(self) -> str:
+        return self._md5.hexdigest()
+
+    def commit(self, bext: bwf.Bext | None) -> tuple[str, int]:
+        """Close, add provenance, rename to the final name; return (SHA-256, bytes).
+
+        ``bext`` is appended to WAV/WAVEX/RF64 output; FLAC output gets its
+        Vorbis comments filled in; other containers carry no provenance (the
+        manifest does).
+        """
+        self._sf.close()
+        if bext is not None and self.spec.container in ("wav", "wavex", "rf64"):
+            bwf.append_bext(self.temp_path, bext)
+        if self.spec.container == "flac" and self.flac_tags:
+            bwf.fill_flac_tags(self.temp_path, self.flac_tags)
+        digest = sha256_file(self.temp_path)
+        os.replace(self.temp_path, self.final_path)
+        return digest
+
+    def abort(self) -> None:
+        """Close and delete the temporary file (after a failure)."""
+        try:
+            self._sf.close()
+        finally:
+            _unlink(self.temp_path)
