@@ -39,6 +39,13 @@ def run_command(args: argparse.Namespace) -> int:
         return fail(f"{exc.strerror}: {exc.filename!r}")
     except KeyboardInterrupt:
         return fail("interrupted", 130)
+    except BrokenPipeError:
+        # The reader (e.g. `| head`) went away: stop quietly, as other command-line tools do.
+        import os
+
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 141
 
 
 def add_curve_args(parser: argparse.ArgumentParser, positional: bool = True) -> None:
