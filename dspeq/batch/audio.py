@@ -239,7 +239,8 @@ def declared_frames(path: str | os.PathLike, container: str) -> tuple[int, int] 
 
 # ----------------------------------------------------------------------------- reading
 def _describe_decoder_error(exc: Exception) -> str:
-    return str(exc).strip().removeprefix("Error : ").strip() or type(exc).__name__
+    text = getattr(exc, "error_string", None) or str(exc)
+    return text.strip().removeprefix("Error : ").strip() or type(exc).__name__
 
 
 class Source:
