@@ -507,8 +507,14 @@ class Sink:
         self.peak = 0.0
         self._md5 = hashlib.md5()
         self._float_dtype = np.float64 if spec.subtype == "float64" else np.float32
-        self._sf = sf.SoundFile(self.temp_path, "w", int(round(rate)), int(channels),
-                                spec.sf_subtype, format=spec.sf_format)
+        with open(self.temp_path, "xb"):    # a clear OSError (permissions, read-only) before libsndfile
+            pass
+        try:
+            self._sf = sf.SoundFile(self.temp_path, "w", int(round(rate)), int(channels),
+                                    spec.sf_subtype, format=spec.sf_format)
+        except BaseException:
+            _unlink(self.temp_path)
+            raise
         if spec.container == "flac" and self.flac_tags:
             self._sf.comment = bwf.flac_placeholder(self.flac_tags)
 

@@ -138,6 +138,7 @@ def _prepare_output(task: Task) -> Path:
     """Create the output's folders inside the output root; refuse anything that escapes."""
     root = Path(task.output_root)
     final = Path(task.output_path)
+    root.mkdir(parents=True, exist_ok=True)
     real_root = real_path(root)
     folder = root
     for part in final.parent.relative_to(root).parts:

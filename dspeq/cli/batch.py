@@ -12,7 +12,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from ._common import CAUTION, add_curve_args
+from ._common import CAUTION, add_curve_args, fail
 
 __all__ = ["register", "cmd_batch", "settings_from_args"]
 
@@ -160,8 +160,12 @@ def cmd_batch(args: argparse.Namespace) -> int:
         return 0
     progress = sys.stderr.isatty() if args.progress is None else args.progress
     scheduler = args.scheduler or args.cluster
-    summary = run_job(job, workers=args.workers, scheduler=scheduler, progress=progress,
-                      on_result=_reporter(show_each=not progress), the_plan=the_plan)
+    try:
+        summary = run_job(job, workers=args.workers, scheduler=scheduler, progress=progress,
+                          on_result=_reporter(show_each=not progress), the_plan=the_plan)
+    except OSError as exc:
+        return fail(f"cannot write the output folder or manifest ({exc.strerror or exc}): "
+                    f"{str(exc.filename or job.manifest_path)!r}")
     for note in the_plan.notices:
         print(f"note: {note}", file=sys.stderr)
     print(summary.text())
