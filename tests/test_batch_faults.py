@@ -189,13 +189,13 @@ def test_read_only_output_folder(tmp_path, capsys):
     out = tmp_path / "out"
     with read_only(out):
         # The manifest elsewhere: every file fails with the reason, exit status 1.
-        code = main(["batch", str(inp), str(out), "--curve", "riaa", "--no-progress",
+        code = main(["batch", str(inp), str(out), "--curve", "riaa", "--no-progress", "--workers", "1",
                      "--manifest", str(tmp_path / "m.jsonl")])
         _, err = capsys.readouterr()
         assert code == 1
         assert err.count("FAILED") == 2 and ("Read-only file system" in err or "Permission denied" in err)
         # The manifest inside the read-only folder: one line on stderr, exit status 2.
-        code = main(["batch", str(inp), str(out), "--curve", "riaa", "--no-progress"])
+        code = main(["batch", str(inp), str(out), "--curve", "riaa", "--no-progress", "--workers", "1"])
         _, err = capsys.readouterr()
         assert code == 2 and "cannot write the output folder or manifest" in err
         assert list(out.iterdir()) == []
