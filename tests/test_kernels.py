@@ -1,0 +1,382 @@
+"""The numba kernels: SOS filter loops, denormal flush, TPDF quantizer, peak.
+
+Reference values come from scipy.signal.sosfilt and numpy; dither theory from
+S. P. Lipshitz, R. A. Wannamaker, J. Vanderkooy, "Quantization and Dither: A
+Theoretical Survey", JAES 40(5), 1992.
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy import signal
+
+from dspeq import _kernels as K
+
+ROOT = Path(__file__).resolve().parent.parent
+
+# A slow two-section cascade: RIAA playback (318/3180/75 us) with the IEC
+# 7950 us high-pass, bilinear at 96 kHz. Its 3180 us pole decays by 1/e in
+# ~305 samples, so an impulse needs ~216 000 samples to reach subnormals.
+_RIAA_Z, _RIAA_P, _RIAA_K = signal.bilinear_zpk(
+    [-1 / 318e-6, 0.0], [-1 / 3180e-6, -1 / 75e-6, -1 / 7950e-6], 1.0, 96000
+)
+RIAA_SOS = np.ascontiguousarray(signal.zpk2sos(_RIAA_Z, _RIAA_P, _RIAA_K))
+
+
+def sosfilt_frames(sos, x, zi=None):
+    """scipy.signal.sosfilt on a (frames, channels) block with our zi layout."""
+    if zi is None:
+        return signal.sosfilt(sos, x.T).T
+    y, zf = signal.sosfilt(sos, x.T, zi=zi)
+    return y.T, zf
+
+
+def cascade(n_sections):
+    """A stable elliptic band-pass of ``n_sections`` biquads (scipy design)."""
+    return np.ascontiguousarray(
+        signal.ellip(n_sections, 0.5, 60, [0.05, 0.4], btype="band", output="sos")[:n_sections]
+    )
+
+
+# ---------------------------------------------------------------- SOS filter
+
+
+@pytest.mark.parametrize("n_sections", [1, 2, 3, 4, 5, 9])
+@pytest.mark.parametrize("channels", [1, 2, 3, 8])
+def test_float64_bit_identical_to_sosfilt(n_sections, channels):
+    rng = np.random.default_rng(n_sections * 10 + channels)
+    sos = cascade(n_sections)
+    x = rng.standard_normal((3000, channels))
+    zi0 = rng.standard_normal((n_sections, channels, 2)) * 0.1
+    zi = zi0.copy()
+    y = K.sos_filter(sos, x, zi)
+    ref, zf = sosfilt_frames(sos, x, zi0)
+    assert np.array_equal(y, ref)
+    assert np.array_equal(zi, zf)
+
+
+@pytest.mark.parametrize(("n_sections", "channels"), [(1, 1), (2, 2), (2, 5), (5, 1)])
+def test_float32_computed_in_float64_rounded_once(n_sections, channels):
+    rng = np.random.default_rng(7)
+    sos = cascade(n_sections)
+    x = rng.standard_normal((2500, channels)).astype(np.float32)
+    zi = np.zeros((n_sections, channels, 2))
+    y = K.sos_filter(sos, x, zi)
+    ref, zf = sosfilt_frames(sos, x.astype(np.float64), np.zeros_like(zi))
+    assert y.dtype == np.float32
+    assert np.array_equal(y, ref.astype(np.float32))
+    assert np.array_equal(zi, zf)
+
+
+def test_out_may_be_input():
+    rng = np.random.default_rng(3)
+    x = rng.standard_normal((500, 2))
+    ref = sosfilt_frames(RIAA_SOS, x)
+    K.sos_filter(RIAA_SOS, x, np.zeros((2, 2, 2)), out=x)
+    assert np.array_equal(x, ref)
+
+
+def test_filter_unchecked_reports_nonfinite_state():
+    for channels in (1, 2, 4):
+        x = np.ones((100, channels))
+        zi = np.zeros((2, channels, 2))
+        assert K.filter_unchecked(RIAA_SOS, x, zi, np.empty_like(x))
+        x[50, channels - 1] = np.inf
+        assert not K.filter_unchecked(RIAA_SOS, x, zi, np.empty_like(x))
+
+
+def test_argument_checks():
+    x = np.zeros((10, 2))
+    with pytest.raises(ValueError, match="zi must be"):
+        K.sos_filter(RIAA_SOS, x, np.zeros((2, 1, 2)))
+    with pytest.raises(ValueError, match="x must be"):
+        K.sos_filter(RIAA_SOS, x.astype(np.int32), np.zeros((2, 2, 2)))
+    with pytest.raises(ValueError, match="out must be"):
+        K.sos_filter(RIAA_SOS, x, np.zeros((2, 2, 2)), out=np.zeros((10, 2), np.float32))
+
+
+@pytest.mark.parametrize("layout", [1, 2, 0])
+@pytest.mark.parametrize("n_sections", [1, 2, 3, 4])
+def test_pure_python_loops_equal_compiled(layout, n_sections):
+    channels = layout or 3
+    rng = np.random.default_rng(layout + 5 * n_sections)
+    sos = cascade(n_sections)
+    # 1100 frames cross one flush boundary; tiny initial states get flushed.
+    x = rng.standard_normal((1100, channels))
+    x[:, 0] = 0.0
+    zi0 = rng.choice([1e-250, 0.3], size=(n_sections, channels, 2))
+    kernel = K._sos_loop(n_sections, layout)
+    results = []
+    for func in (kernel.py_func, kernel.compiled):
+        zi, y = zi0.copy(), np.empty_like(x)
+        finite = func(sos, x, y, zi)
+        results.append((y, zi, finite))
+    assert np.array_equal(results[0][0], results[1][0])
+    assert np.array_equal(results[0][1], results[1][1])
+    assert bool(results[0][2]) is True and bool(results[1][2]) is True
+
+
+# ---------------------------------------------------------------- denormals
+
+
+def test_flush_leaves_noise_bit_identical():
+    # Low-level noise (-120 dBFS) over many flush periods: nothing is flushed.
+    x = np.random.default_rng(11).standard_normal((50 * K.FLUSH_EVERY, 2)) * 1e-6
+    assert np.array_equal(K.sos_filter(RIAA_SOS, x, np.zeros((2, 2, 2))), sosfilt_frames(RIAA_SOS, x))
+
+
+def test_flush_removes_subnormals_from_impulse_tail():
+    # RIAA playback alone (318/3180/75 us) at 48 kHz: one biquad whose
+    # 3180 us pole decays by 1/e in ~153 samples; sosfilt's output turns
+    # subnormal after ~106 000 samples and stays there.
+    z, p, k = signal.bilinear_zpk([-1 / 318e-6], [-1 / 3180e-6, -1 / 75e-6], 1.0, 48000)
+    sos = np.ascontiguousarray(signal.zpk2sos(z, p, k))
+    x = np.zeros((300_000, 1))
+    x[0, 0] = 1.0
+    zi = np.zeros((1, 1, 2))
+    y = K.sos_filter(sos, x, zi)
+    ref = sosfilt_frames(sos, x)
+    tiny = np.finfo(np.float64).smallest_normal
+    # The hazard is real: plain recursion produces subnormal output ...
+    assert np.count_nonzero((ref != 0) & (np.abs(ref) < tiny)) > 100_000
+    # ... the flushed loop none, and the tail ends at exactly zero.
+    assert np.count_nonzero((y != 0) & (np.abs(y) < tiny)) == 0
+    assert not zi.any()
+    # The change is far below -300 dBFS (1e-15).
+    assert np.max(np.abs(y - ref)) < 1e-15
+    assert np.array_equal(y[:50_000], ref[:50_000])
+
+
+# ---------------------------------------------------------------- dither
+
+
+def test_dither_is_triangular_with_zero_mean():
+    n = 1 << 20
+    d = K.tpdf_dither(n, K.seed_state(2024))
+    assert d.min() >= -1.0 and d.max() < 1.0
+    # TPDF: density 1 - |d| on (-1, 1); mean 0, variance 2 * (1/12) = 1/6.
+    sigma = np.sqrt(1 / 6)
+    assert abs(d.mean()) < 5 * sigma / np.sqrt(n)
+    assert d.var() == pytest.approx(1 / 6, rel=0.01)
+    edges = np.linspace(-1.0, 1.0, 41)
+    counts, _ = np.histogram(d, edges)
+    cdf = np.where(edges < 0, (1 + edges) ** 2 / 2, 1 - (1 - edges) ** 2 / 2)
+    expected = np.diff(cdf) * n
+    # Binomial counts: every bin within 5 standard deviations.
+    assert np.all(np.abs(counts - expected) < 5 * np.sqrt(expected) + 1)
+
+
+def test_two_uniforms_are_independent():
+    # The two halves of each draw must not be correlated: the sum of two
+    # uniforms has variance 1/6 only if their covariance is zero, and the
+    # fourth moment of a triangle on (-1, 1) is 1/15 (vs 1/12 for u + u).
+    d = K.tpdf_dither(1 << 20, K.seed_state(5))
+    assert np.mean(d**4) == pytest.approx(1 / 15, rel=0.01)
+
+
+def test_seed_determinism_and_continuation():
+    a = K.tpdf_dither(1000, K.seed_state(1))
+    assert np.array_equal(a, K.tpdf_dither(1000, K.seed_state(1)))
+    assert not np.array_equal(a, K.tpdf_dither(1000, K.seed_state(2)))
+    state = K.seed_state(1)
+    b = np.concatenate([K.tpdf_dither(n, state) for n in (1, 10, 989)])
+    assert np.array_equal(a, b)
+    assert state[0] != K.seed_state(1)[0]
+
+
+def test_seed_state_checks():
+    assert K.seed_state(-1)[0] == np.uint64(2**64 - 1)
+    assert K.seed_state(np.int64(3))[0] == 3
+    for bad in (1.5, True, "1"):
+        with pytest.raises(TypeError):
+            K.seed_state(bad)
+    with pytest.raises(ValueError, match="state must be"):
+        K.tpdf_dither(3, np.zeros(1, np.int64))
+
+
+def _numpy_quantize(y, gain, bits, seed):
+    """Independent numpy version of quantize_tpdf (dither from tpdf_dither)."""
+    v = y.astype(np.float64) * gain * 2.0 ** (bits - 1)
+    if bits < 32:
+        v = v + K.tpdf_dither(v.size, K.seed_state(seed)).reshape(v.shape)
+    lo, hi = -(2.0 ** (bits - 1)), 2.0 ** (bits - 1) - 1
+    rounded = np.rint(v)
+    clips = np.count_nonzero((rounded < lo) | (rounded > hi))
+    q = np.clip(rounded, lo, hi)
+    return (q.astype(np.int64) << (32 - bits)).astype(np.int32), clips
+
+
+@pytest.mark.parametrize("bits", [8, 16, 24, 32])
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_quantize_matches_numpy_reference(bits, dtype):
+    y = (np.random.default_rng(bits).uniform(-1.2, 1.2, (3000, 2))).astype(dtype)
+    out = np.empty(y.shape, np.int32)
+    state = K.seed_state(99)
+    clips, peak = K.quantize_tpdf(y, 0.9, bits, state, out)
+    expected, expected_clips = _numpy_quantize(y, 0.9, bits, 99)
+    assert np.array_equal(out, expected)
+    assert clips == expected_clips > 0
+    assert peak == np.max(np.abs(y.astype(np.float64) * 0.9))
+    if bits == 32:
+        assert state[0] == K.seed_state(99)[0]  # no dither drawn
+
+
+def test_quantize_continuation_equals_one_call():
+    y = np.random.default_rng(4).uniform(-1, 1, (5000, 2))
+    whole = np.empty(y.shape, np.int32)
+    K.quantize_tpdf(y, 1.0, 16, K.seed_state(8), whole)
+    parts = np.empty(y.shape, np.int32)
+    state = K.seed_state(8)
+    for lo, hi in [(0, 1), (1, 1000), (1000, 1000), (1000, 5000)]:
+        K.quantize_tpdf(y[lo:hi], 1.0, 16, state, parts[lo:hi])
+    assert np.array_equal(whole, parts)
+    again = np.empty(y.shape, np.int32)
+    K.quantize_tpdf(y, 1.0, 16, K.seed_state(8), again)
+    assert np.array_equal(whole, again)
+
+
+def test_clip_count_exact_and_left_justified():
+    y = np.full((1000, 2), 0.25)
+    y[10:17, 0] = 1.5  # 7 positive overs
+    y[500:503, 1] = -3.0  # 3 negative overs
+    for bits in (8, 16, 24):
+        out = np.empty(y.shape, np.int32)
+        clips, peak = K.quantize_tpdf(y, 1.0, bits, K.seed_state(0), out)
+        assert clips == 10
+        assert peak == 3.0
+        top = 2 ** (bits - 1)
+        assert np.all(out[10:17, 0] == (top - 1) << (32 - bits))
+        assert np.all(out[500:503, 1] == -top << (32 - bits))
+        assert np.all(out & ((1 << (32 - bits)) - 1) == 0)  # low bits empty
+        # 0.25 * 2**(bits-1) plus dither in (-1, 1) LSB rounds to one of 3 codes.
+        codes = np.unique(out[20:400] >> (32 - bits))
+        assert set(codes) <= {top // 4 - 1, top // 4, top // 4 + 1}
+
+
+@pytest.mark.parametrize(("bits", "subtype", "read_dtype", "shift"),
+                         [(16, "PCM_16", "int16", 16), (24, "PCM_24", "int32", 0)])
+def test_left_justified_ints_are_what_soundfile_writes(tmp_path, bits, subtype, read_dtype, shift):
+    soundfile = pytest.importorskip("soundfile")
+    y = np.random.default_rng(1).uniform(-0.9, 0.9, (2000, 2))
+    out = np.empty(y.shape, np.int32)
+    K.quantize_tpdf(y, 1.0, bits, K.seed_state(3), out)
+    path = tmp_path / "q.wav"
+    soundfile.write(path, out, 48000, subtype=subtype)
+    back, _ = soundfile.read(path, dtype=read_dtype)
+    assert np.array_equal(back, out >> shift)
+
+
+def test_tpdf_noise_floor_of_full_scale_sine_at_16_bits():
+    # Derivation (Lipshitz et al. 1992): rounding adds error of variance
+    # LSB^2/12; TPDF dither (two independent uniforms of variance LSB^2/12
+    # each) adds 2 * LSB^2/12. With TPDF the total error is independent of
+    # the signal, so its power is 3 * LSB^2/12 = LSB^2/4, i.e. RMS = LSB/2.
+    # At 16 bits with full scale +-1, LSB = 2**-15, so RMS = 2**-16:
+    # 20*log10(2**-16) = -96.33 dB re full-scale DC (1.0), which is
+    # -93.32 dB re the RMS of a full-scale sine (6.02*16 + 1.76 - 4.77 dB).
+    fs, n = 48000, 1 << 18
+    amplitude = 32765 / 32768  # -0.0008 dBFS: peak + dither stays below clipping
+    x = amplitude * np.sin(2 * np.pi * 997 * np.arange(n) / fs)
+    out = np.empty((n, 1), np.int32)
+    clips, _ = K.quantize_tpdf(x[:, None], 1.0, 16, K.seed_state(12), out)
+    assert clips == 0
+    error = (out[:, 0] >> 16) / 32768.0 - x
+    level_db = 10 * np.log10(np.mean(error**2))
+    assert level_db == pytest.approx(-96.33, abs=0.5)
+    # TPDF makes the error power independent of the signal value.
+    lsb_power = (error * 32768) ** 2
+    for lo, hi in [(-1, -0.5), (-0.1, 0.1), (0.5, 1)]:
+        part = lsb_power[(x >= lo) & (x < hi)]
+        assert part.mean() == pytest.approx(0.25, rel=0.05)
+
+
+def test_quantize_nan_and_argument_checks():
+    y = np.array([[0.5], [np.nan], [-0.5]])
+    out = np.empty((3, 1), np.int32)
+    clips, peak = K.quantize_tpdf(y, 1.0, 16, K.seed_state(0), out)
+    assert np.isnan(peak) and out[1, 0] == 0 and clips == 0
+    with pytest.raises(ValueError, match="bits must be one of"):
+        K.quantize_tpdf(y, 1.0, 12, K.seed_state(0), out)
+    with pytest.raises(ValueError, match="out must be int32"):
+        K.quantize_tpdf(y, 1.0, 16, K.seed_state(0), out.astype(np.int16))
+
+
+def test_pure_python_quantizer_equals_compiled():
+    y = np.random.default_rng(6).uniform(-1.1, 1.1, (40, 2))
+    results = []
+    for func in (K._QUANTIZE.py_func, K._QUANTIZE.compiled):
+        state, out = K.seed_state(77), np.empty(y.shape, np.int32)
+        with np.errstate(over="ignore"):  # uint64 arithmetic wraps on purpose
+            clips, peak = func(y, 0.8 * 2.0**15, 16, state, out)
+        results.append((out, int(clips), float(peak), int(state[0])))
+    assert np.array_equal(results[0][0], results[1][0])
+    assert results[0][1:] == results[1][1:]
+
+
+# ---------------------------------------------------------------- peak
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+@pytest.mark.parametrize("n", [0, 1, 3, 4, 5, 1001])
+def test_peak_abs_matches_numpy(dtype, n):
+    x = np.random.default_rng(n).standard_normal((n, 2)).astype(dtype)
+    assert K.peak_abs(x) == (np.abs(x).max() if n else 0.0)
+    assert K.peak_abs(x[::2, 1]) == (np.abs(x[::2, 1]).max() if n else 0.0)
+
+
+def test_peak_abs_nan_and_inf():
+    x = np.zeros(9)
+    x[4] = -np.inf
+    assert K.peak_abs(x) == np.inf
+    x[7] = np.nan
+    assert np.isnan(K.peak_abs(x))
+    assert np.isnan(K._PEAK.py_func(x)) and K._PEAK.py_func(x[:5]) == np.inf
+    with pytest.raises(ValueError, match="float32 or float64"):
+        K.peak_abs(np.zeros(3, np.int16))
+
+
+# ---------------------------------------------------------------- import, cache
+
+
+def test_import_compiles_nothing():
+    code = (
+        "import sys; import dspeq._kernels, dspeq.stream; "
+        "print('numba' in sys.modules)"
+    )
+    result = subprocess.run(
+        [sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, check=True
+    )
+    assert result.stdout.strip() == "False"
+
+
+@pytest.mark.slow
+def test_cache_falls_back_to_temporary_directory(tmp_path):
+    # A copy of the module in a folder where numba can write no __pycache__
+    # (a file stands in its way) and a user cache path that cannot exist:
+    # the kernel must still compile, caching under $TMPDIR.
+    pkg = tmp_path / "pkg"
+    pkg.mkdir()
+    (pkg / "kernels_copy.py").write_text((ROOT / "dspeq" / "_kernels.py").read_text())
+    (pkg / "__pycache__").write_text("not a directory")
+    temp = tmp_path / "tmp"
+    temp.mkdir()
+    env = {k: v for k, v in os.environ.items() if not k.startswith("NUMBA_")}
+    env.update(XDG_CACHE_HOME="/dev/null/cache", HOME="/dev/null/home", TMPDIR=str(temp))
+    code = (
+        "import numpy as np, kernels_copy as k, os; "
+        "print(k.peak_abs(np.arange(5.0))); print(os.environ['NUMBA_CACHE_DIR'])"
+    )
+    result = subprocess.run(
+        [sys.executable, "-c", code], cwd=pkg, env=env, capture_output=True, text=True
+    )
+    assert result.returncode == 0, result.stderr
+    peak, cache_dir = result.stdout.split()
+    assert float(peak) == 4.0
+    assert Path(cache_dir).parent == temp
+    assert any(Path(cache_dir).rglob("*.nbi"))
