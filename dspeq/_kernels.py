@@ -52,6 +52,7 @@ TPDF (Lipshitz, Wannamaker & Vanderkooy, JAES 40(5), 1992).
 from __future__ import annotations
 
 import os
+import stat
 import tempfile
 import threading
 import types
@@ -88,15 +89,28 @@ _COMPILE_LOCK = threading.RLock()
 
 
 def _fallback_cache_dir() -> str:
-    """Point numba's cache at a private temporary directory."""
-    uid = os.getuid() if hasattr(os, "getuid") else os.getpid()
-    path = os.path.join(tempfile.gettempdir(), f"dspeq-numba-cache-{uid}")
-    os.makedirs(path, exist_ok=True)
+    """Point numba's cache at a private directory under the temporary folder.
+
+    The fixed name ``dspeq-numba-cache-<uid>`` is reused only if it is a real
+    directory owned by this user and writable by nobody else (numba's cache
+    holds machine code); otherwise a fresh private directory is made.
+    """
+    uid = os.getuid() if hasattr(os, "getuid") else None
+    path = os.path.join(tempfile.gettempdir(), f"dspeq-numba-cache-{uid or 'user'}")
+    try:
+        os.makedirs(path, mode=0o700, exist_ok=True)
+        info = os.lstat(path)
+        trusted = stat.S_ISDIR(info.st_mode) and (
+            uid is None or (info.st_uid == uid and not info.st_mode & 0o022)
+        )
+    except OSError:
+        trusted = False
+    if not trusted:
+        path = tempfile.mkdtemp(prefix="dspeq-numba-cache-")
     from numba.core import config
 
     os.environ["NUMBA_CACHE_DIR"] = path
     config.reload_config()
-    config.CACHE_DIR = path
     return path
 
 
@@ -267,15 +281,23 @@ _SOS_LOOPS: dict[tuple[int, int], _Kernel] = {}
 def _sos_loop(n_sections: int, layout: int) -> _Kernel:
     """The (lazily compiled) loop for ``n_sections`` sections and a channel layout."""
     key = (n_sections, layout)
-    if key not in _SOS_LOOPS:
-        name, source = _sos_loop_source(n_sections, layout)
-        namespace = {"np": np, "FLUSH_EVERY": FLUSH_EVERY, "FLUSH_BELOW": FLUSH_BELOW}
-        # Compiled under this file's name so numba's disk cache follows this file.
-        exec(compile(source, __file__, "exec"), namespace)  # noqa: S102 - generated here
-        func = namespace[name]
-        func.__module__ = __name__
-        _SOS_LOOPS[key] = _Kernel(func)
+    if key in _SOS_LOOPS:
+        return _SOS_LOOPS[key]
+    with _COMPILE_LOCK:
+        if key not in _SOS_LOOPS:
+            _SOS_LOOPS[key] = _Kernel(_build_sos_loop(n_sections, layout))
     return _SOS_LOOPS[key]
+
+
+def _build_sos_loop(n_sections: int, layout: int) -> Callable:
+    """Generate and define the pure-Python loop for one cascade length and layout."""
+    name, source = _sos_loop_source(n_sections, layout)
+    namespace = {"np": np, "FLUSH_EVERY": FLUSH_EVERY, "FLUSH_BELOW": FLUSH_BELOW}
+    # Compiled under this file's name so numba's disk cache follows this file.
+    exec(compile(source, __file__, "exec"), namespace)  # noqa: S102 - generated here
+    func = namespace[name]
+    func.__module__ = __name__
+    return func
 
 
 def sos_filter(
@@ -306,6 +328,17 @@ def sos_filter(
     ndarray
         The output, of ``x``'s dtype. Computation is in float64 throughout;
         float32 output is the float64 result rounded once.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from scipy.signal import sosfilt
+    >>> sos = np.array([[0.5, 0.5, 0.0, 1.0, -0.2, 0.0]])
+    >>> x = np.random.default_rng(1).standard_normal((100, 2))
+    >>> zi = np.zeros((1, 2, 2))
+    >>> y = sos_filter(sos, x, zi)
+    >>> bool(np.array_equal(y, sosfilt(sos, x, axis=0)))
+    True
     """
     _check_filter_args(sos, x, zi)
     if out is None:
@@ -509,6 +542,16 @@ def quantize_tpdf(
     peak : float
         Largest ``abs(y * gain)`` before dither, in full-scale units; NaN if
         ``y`` holds NaN (those samples are written as 0).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> y = np.array([[0.5, -0.25], [1.5, 0.0]])
+    >>> out = np.empty(y.shape, np.int32)
+    >>> quantize_tpdf(y, 1.0, 16, seed_state(7), out)
+    (1, 1.5)
+    >>> out[1, 0] == 32767 << 16  # clamped, left-justified
+    np.True_
     """
     if bits not in _BITS:
         raise ValueError(f"bits must be one of {_BITS}, got {bits!r}")

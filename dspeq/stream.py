@@ -193,8 +193,8 @@ class Equalizer:
         if not _kernels.filter_unchecked(self._coefficients, frames, zi, result):
             self._check_finite(frames)
             raise DspeqError(
-                f"filter overflowed on a finite block of shape {frames.shape!r}; "
-                f"output peak would exceed {np.finfo(np.float64).max!r}"
+                f"filter state overflowed float64 on a finite block of shape "
+                f"{frames.shape!r}; the coefficients or the input level are out of range"
             )
         self._zi = zi
         return result.reshape(np.shape(block)) if out is None else out
@@ -205,7 +205,8 @@ class Equalizer:
             raise DspeqError(f"block must be a numpy array, got {type(block).__name__}")
         if block.dtype not in _FLOATS:
             raise DspeqError(
-                f"block must be float32 or float64 audio, got dtype {block.dtype.name!r}; "
+                f"block must be float32 or float64 audio in native byte order, "
+                f"got dtype {str(block.dtype)!r}; "
                 "convert integer PCM to float first (full scale = 1.0)"
             )
         if block.ndim == 1:

@@ -7,6 +7,7 @@ Theoretical Survey", JAES 40(5), 1992.
 
 from __future__ import annotations
 
+import doctest
 import os
 import subprocess
 import sys
@@ -328,6 +329,7 @@ def test_peak_abs_matches_numpy(dtype, n):
     x = np.random.default_rng(n).standard_normal((n, 2)).astype(dtype)
     assert K.peak_abs(x) == (np.abs(x).max() if n else 0.0)
     assert K.peak_abs(x[::2, 1]) == (np.abs(x[::2, 1]).max() if n else 0.0)
+    assert K._PEAK.py_func(x.ravel()) == K.peak_abs(x)  # pure Python == compiled
 
 
 def test_peak_abs_nan_and_inf():
@@ -342,6 +344,11 @@ def test_peak_abs_nan_and_inf():
 
 
 # ---------------------------------------------------------------- import, cache
+
+
+def test_examples_in_docstrings_run():
+    result = doctest.testmod(K, optionflags=doctest.ELLIPSIS)
+    assert result.attempted >= 10 and result.failed == 0
 
 
 def test_import_compiles_nothing():
@@ -380,3 +387,18 @@ def test_cache_falls_back_to_temporary_directory(tmp_path):
     assert float(peak) == 4.0
     assert Path(cache_dir).parent == temp
     assert any(Path(cache_dir).rglob("*.nbi"))
+
+
+def test_fallback_cache_dir_refuses_a_planted_path(tmp_path, monkeypatch):
+    # Someone else's directory (here: a symlink) at the fixed name must not
+    # be trusted with machine code; a fresh private directory is used instead.
+    monkeypatch.setattr(K.tempfile, "tempdir", str(tmp_path))
+    monkeypatch.delenv("NUMBA_CACHE_DIR", raising=False)
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    (tmp_path / f"dspeq-numba-cache-{os.getuid()}").symlink_to(elsewhere)
+    path = Path(K._fallback_cache_dir())
+    assert path.parent == tmp_path and path.is_dir() and not path.is_symlink()
+    assert path.name.startswith("dspeq-numba-cache-") and path != elsewhere
+    assert path.stat().st_mode & 0o077 == 0
+    assert os.environ["NUMBA_CACHE_DIR"] == str(path)

@@ -124,7 +124,9 @@ def test_non_contiguous_block_and_empty_block():
 @pytest.mark.parametrize(
     ("block", "message"),
     [
-        (np.zeros((8, 2), np.int16), r"float32 or float64 audio, got dtype 'int16'"),
+        (np.zeros((8, 2), np.int16), r"float32 or float64 audio in native byte order, "
+                                     r"got dtype 'int16'"),
+        (np.zeros((8, 2), ">f8" if np.little_endian else "<f8"), r"got dtype '[<>]f8'"),
         (np.zeros((8, 2), np.complex128), r"got dtype 'complex128'"),
         (np.zeros((8, 3)), r"block must have shape \(frames, 2\), got \(8, 3\)"),
         (np.zeros((8, 2, 1)), r"block must have shape \(frames, 2\), got \(8, 2, 1\)"),
@@ -159,7 +161,7 @@ def test_nonfinite_block_raises_and_keeps_state(bad, in_place):
 
 def test_overflow_raises_and_keeps_state():
     eq = Equalizer([[1e300, 0.0, 0.0, 1.0, 0.0, 0.0]])
-    with pytest.raises(DspeqError, match="filter overflowed"):
+    with pytest.raises(DspeqError, match="filter state overflowed float64"):
         eq.process(np.full(4, 1e10))
     assert not eq.state.any()
 
