@@ -161,7 +161,7 @@ def _check_stable(z: np.ndarray, p: np.ndarray, k: float, method: str) -> None:
         raise DesignError(f"method {method!r} produced an unstable design (pole radius {worst:.9f})")
 
 
-_CACHE: dict[tuple, Design] = {}
+_CACHE: dict[tuple, tuple[Design, list]] = {}
 _CACHE_MAX = 512
 
 
@@ -203,8 +203,20 @@ def design(curve: Curve | str, fs: float, method: str = DEFAULT_METHOD, *,
         raise DesignError(f"unknown method {method!r}; choose from {', '.join(sorted(_METHODS))}")
     key = (c.key(), rate, method, float(lf_limit_hz), tuple(sorted(options.items())))
     hit = _CACHE.get(key)
-    if hit is not None and hit.curve.name == c.name:
-        return hit
+    if hit is None or hit[0].curve.name != c.name:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            d = _make_design(c, rate, method, float(lf_limit_hz), options)
+        hit = (d, [(w.message, w.category) for w in caught])
+        if len(_CACHE) >= _CACHE_MAX:
+            _CACHE.clear()
+        _CACHE[key] = hit
+    for message, category in hit[1]:       # a cached design warns again, like a fresh one
+        warnings.warn(message, category, stacklevel=2)
+    return hit[0]
+
+
+def _make_design(c: Curve, rate: float, method: str, lf_limit_hz: float, options: dict) -> Design:
     target = c.with_lf_limit(lf_limit_hz)
     _warn_high_corners(target, rate)
     try:
@@ -217,11 +229,7 @@ def design(curve: Curve | str, fs: float, method: str = DEFAULT_METHOD, *,
 
     sos = np.ascontiguousarray(signal.zpk2sos(z, p, float(k)), dtype=np.float64)
     sos.setflags(write=False)
-    d = Design(sos, rate, method, c, target, {"lf_limit_hz": float(lf_limit_hz), **options})
-    if len(_CACHE) >= _CACHE_MAX:
-        _CACHE.clear()
-    _CACHE[key] = d
-    return d
+    return Design(sos, rate, method, c, target, {"lf_limit_hz": lf_limit_hz, **options})
 
 
 # ----------------------------------------------------------------------------- methods
