@@ -1,0 +1,275 @@
+"""Write docs/accuracy.md: how closely each design method follows each catalog curve.
+
+For every catalog curve at speed ratio 1 and 2, at 44.1, 48, 88.2, 96 and
+192 kHz, the default method ("fit") is measured with :func:`dspeq.check` on
+the real design path, next to the single-shot methods (bilinear, bilinear
+prewarped at 10 kHz, matched-z, closed-form).  Also: corrections and custom
+curves, the known limits, and the phase a minimum-phase design can reach at
+all (folded cepstrum).  Every number in the file is computed by this script.
+
+Usage::
+
+    python benchmarks/accuracy_table.py                 # writes docs/accuracy.md
+    python benchmarks/accuracy_table.py --output -      # prints it instead
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import platform
+import subprocess
+import sys
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+import scipy
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+import dspeq  # noqa: E402
+from dspeq._fit import POLE_RADIUS_MAX, default_tol_db  # noqa: E402
+from dspeq.check import band_for_rate  # noqa: E402
+
+__all__ = ["main", "measure", "phase_below_refit", "minimum_phase_floor"]
+
+RATES = (44100.0, 48000.0, 88200.0, 96000.0, 192000.0)
+SPEEDS = (1.0, 2.0)
+# Prewarp where the high-frequency roll-offs are specified (IASA TC-04 gives them at 10 kHz);
+# at 1 kHz, the normalization frequency, prewarping changes almost nothing.
+PREWARP_HZ = 10_000.0
+OTHERS = (("bilinear", {}), ("bilinear", {"prewarp_hz": PREWARP_HZ}), ("matched-z", {}),
+          ("closed-form", {}))
+OTHER_LABELS = ("bilinear", f"bilinear, prewarp {PREWARP_HZ:g} Hz", "matched-z", "closed-form")
+CORRECTIONS = (("iec-7.5ips", {"from_curve": "nab-7.5ips"}),
+               ("nab-7.5ips", {"speed": 2, "from_curve": "nab-15ips"}),
+               ("nab-15ips", {"from_curve": "iec-15ips"}),
+               ("disc-500-16", {"from_curve": "riaa"}),
+               ("riaa-iec", {"speed": 2, "from_curve": "riaa"}),
+               ("riaa", {"speed": 78 / 33.333}),
+               ("tc:50,3180/inf,75,25", {}),
+               ("tc:5/inf", {}),
+               ("1/(1 + s*100u + s^2*1e-8)", {}))
+
+
+def phase_below_refit(dev: dspeq.Deviation, f_hz: float) -> float:
+    """Largest phase error (deg) up to ``f_hz`` after removing the delay best fitted up to f_hz."""
+    sel = dev.freqs <= f_hz
+    w = 2 * math.pi * dev.freqs[sel] / dev.fs
+    pe = dev.phase_error_deg[sel]
+    return float(np.max(np.abs(pe - w * np.dot(w, pe) / np.dot(w, w))))
+
+
+def design_quietly(spec, fs: float, **options) -> tuple[dspeq.Design | None, str]:
+    """(design or None, marks): '†' the fit warned (tolerance not met), '‡' a corner warning."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            d = dspeq.design(spec, fs, **options)
+        except dspeq.DspeqError as exc:
+            return None, f"error: {exc}"
+    text = " ".join(str(w.message) for w in caught)
+    return d, ("†" if "fit of" in text else "") + ("‡" if "at or above" in text else "")
+
+
+def measure(spec, fs: float) -> dict:
+    """Fit figures and the other methods' largest errors for one curve at one rate."""
+    d, marks = design_quietly(spec, fs)
+    dev = dspeq.check(d)
+    row = {"db": dev.max_abs_db, "at": dev.f_at_max, "sections": len(d.sos), "marks": marks,
+           "ph10": dev.max_phase_below(10_000.0), "ph20": dev.max_phase_deg,
+           "ph10r": phase_below_refit(dev, 10_000.0), "others": []}
+    for method, opts in OTHERS:
+        other, _ = design_quietly(spec, fs, method=method, **opts)
+        row["others"].append(float("nan") if other is None else dspeq.check(other).max_abs_db)
+    return row
+
+
+def minimum_phase_floor(curve: dspeq.Curve, fs: float, n: int = 1 << 18) -> tuple[float, float]:
+    """Phase error of the minimum-phase filter whose magnitude is the curve's up to Nyquist.
+
+    The phase follows from the log magnitude by the folded real cepstrum
+    (Oppenheim & Schafer, homomorphic deconvolution); returned as the largest
+    error (deg) up to 10 kHz after the whole-band delay of dspeq.check and
+    after the delay fitted up to 10 kHz.
+    """
+    f = np.fft.rfftfreq(n, 1.0 / fs)
+    logmag = np.log(np.abs(curve.response(np.maximum(f, 1e-3))))
+    cep = np.fft.irfft(logmag, n)
+    fold = np.zeros(n)
+    fold[0], fold[n // 2] = cep[0], cep[n // 2]
+    fold[1:n // 2] = 2.0 * cep[1:n // 2]
+    phase = np.fft.rfft(fold).imag
+    lo, hi = band_for_rate((20.0, 20_000.0), fs)
+    grid = np.geomspace(lo, hi, 2000)
+    err = np.interp(grid, f, phase) - np.radians(curve.phase_deg(grid))
+    out = []
+    for top in (hi, 10_000.0):
+        sel = grid <= top
+        w = 2 * math.pi * grid[sel] / fs
+        tau = np.dot(w, -err[sel]) / np.dot(w, w)
+        pe = np.degrees(err + 2 * math.pi * grid / fs * tau)
+        out.append(float(np.max(np.abs(pe[grid <= 10_000.0]))))
+    return out[0], out[1]
+
+
+def header() -> list[str]:
+    try:
+        commit = subprocess.run(["git", "-C", str(ROOT), "rev-parse", "--short", "HEAD"],
+                                capture_output=True, text=True, check=True).stdout.strip()
+    except (OSError, subprocess.CalledProcessError):
+        commit = "unknown"
+    cpu = platform.processor() or platform.machine()
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    return [
+        "# Design accuracy",
+        "",
+        "<!-- generated by benchmarks/accuracy_table.py; do not edit by hand -->",
+        "",
+        f"Generated {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())} by "
+        "`python benchmarks/accuracy_table.py` on "
+        f"{cpu}, {platform.system()} {platform.release()}; Python {platform.python_version()}, "
+        f"numpy {np.__version__}, scipy {scipy.__version__}, dspeq {dspeq.__version__} "
+        f"(commit {commit}, plus any uncommitted changes).",
+        "",
+        "Measured with `dspeq.check(design)` over 20 Hz – 20 kHz (2000 log-spaced points; the top "
+        "edge limited to 0.95 × Nyquist) against the curve actually realized (integrators moved "
+        "to the 3 Hz low-frequency limit). Magnitude error = digital − analog, in dB. "
+        "Phase error = digital − analog after removing the least-squares pure delay over the whole "
+        "band (dspeq.check's definition), largest value up to 10 kHz and up to 20 kHz; "
+        "*ph 10k\\** removes instead the delay fitted up to 10 kHz only. "
+        "The fit's tolerance (which sets the number of sections) defaults to 0.002 dB below "
+        "48 kHz and 0.0005 dB from 48 kHz. Marks: † the fit warned that it missed its tolerance; "
+        "‡ design() warned that a corner of the curve lies at or above 0.45·fs.",
+        "",
+    ]
+
+
+def fmt_db(x: float) -> str:
+    return "error" if math.isnan(x) else (f"{x:.6f}" if x < 0.01 else f"{x:.3g}")
+
+
+def summary(rows: dict) -> list[str]:
+    out = ["## Worst case per rate", "",
+           "Over all catalog curves at speed ×1 and ×2. Target (issue 4): ≤ 0.002 dB at 44.1 kHz "
+           "with at most two biquads, ≤ 0.0005 dB from 48 kHz; ≤ 0.5° to 10 kHz at 44.1 kHz.", "",
+           "| rate | fit worst dB (curve) | meets target | sections used | ph 10k ° | ph 20k ° | "
+           "ph 10k* ° | " + " | ".join(OTHER_LABELS) + " |",
+           "|---|---|---|---|---|---|---|" + "---|" * len(OTHERS)]
+    for fs in RATES:
+        sel = {k: v for k, v in rows.items() if k[2] == fs}
+        worst = max(sel, key=lambda k: sel[k]["db"])
+        tol = default_tol_db(fs)
+        ok = sum(v["db"] <= tol for v in sel.values())
+        secs = sorted({v["sections"] for v in sel.values()})
+        others = [max(v["others"][i] for v in sel.values()) for i in range(len(OTHERS))]
+        out.append(f"| {fs / 1000:g} kHz | {sel[worst]['db']:.6f} ({worst[0]} ×{worst[1]:g}) | "
+                   f"{ok}/{len(sel)} ≤ {tol:g} dB | {', '.join(map(str, secs))} | "
+                   f"{max(v['ph10'] for v in sel.values()):.3f} | "
+                   f"{max(v['ph20'] for v in sel.values()):.3f} | "
+                   f"{max(v['ph10r'] for v in sel.values()):.3f} | "
+                   + " | ".join(fmt_db(x) for x in others) + " |")
+    return out + [""]
+
+
+def table(rows: dict, fs: float) -> list[str]:
+    out = [f"### {fs / 1000:g} kHz", "",
+           "| curve | speed | fit dB | at Hz | sections | ph 10k ° | ph 20k ° | ph 10k* ° | "
+           + " | ".join(OTHER_LABELS) + " |",
+           "|---|---|---|---|---|---|---|---|" + "---|" * len(OTHERS)]
+    for (name, speed, rate), r in rows.items():
+        if rate != fs:
+            continue
+        out.append(f"| {name} | ×{speed:g} | {r['db']:.6f}{r['marks']} | {r['at']:.0f} | "
+                   f"{r['sections']} | {r['ph10']:.3f} | {r['ph20']:.3f} | {r['ph10r']:.3f} | "
+                   + " | ".join(fmt_db(x) for x in r["others"]) + " |")
+    return out + [""]
+
+
+def corrections() -> list[str]:
+    out = ["## Corrections and custom curves (fit)", "",
+           "| curve | 44.1 kHz dB (sections) | 48 kHz dB (sections) | 96 kHz dB (sections) |",
+           "|---|---|---|---|"]
+    for spec, kw in CORRECTIONS:
+        c = dspeq.curve(spec, **kw)
+        cells = []
+        for fs in (44100.0, 48000.0, 96000.0):
+            r = measure(c, fs)
+            cells.append(f"{r['db']:.6f}{r['marks']} ({r['sections']})")
+        out.append(f"| `{c.name}` | " + " | ".join(cells) + " |")
+    return out + [""]
+
+
+def limits() -> list[str]:
+    out = ["## Known limits", ""]
+    d, marks = design_quietly("riaa-iec", 44100.0, sections=2)
+    out.append(f"* **riaa-iec at 44.1 kHz with two biquads:** {dspeq.check(d).max_abs_db:.4f} dB{marks}. "
+               "The IEC 7950 µs low-cut makes the curve third order (three poles, two zeros), so two "
+               "sections leave only one spare pole for the bend near Nyquist; the default takes a "
+               "third section (see the 44.1 kHz table). The target of two biquads holds for every "
+               "curve of order two.")
+    worst = max((measure(dspeq.curve(c["name"], speed=s), 384000.0)["db"], c["name"], s)
+                 for c in dspeq.curves() for s in SPEEDS)
+    out.append(f"* **384 kHz:** worst {worst[0]:.4f} dB ({worst[1]} ×{worst[2]:g}). The 3 Hz "
+               "low-frequency limit of curves with an integrator maps to |z| = "
+               f"{math.exp(-2 * math.pi * 3 / 384000):.6f}, beyond the 0.9999 pole bound; the "
+               "clipped pole plus one compensating pole/zero pair cannot follow it to 0.0005 dB "
+               "at 20 Hz, and the fit warns. A low-frequency limit of "
+               f"{-math.log(POLE_RADIUS_MAX) * 384000 / (2 * math.pi):.2f} Hz or more "
+               "(`lf_limit_hz=`) keeps the pole inside. (At 192 kHz the same pole, |z| = "
+               f"{math.exp(-2 * math.pi * 3 / 192000):.6f}, is compensated to the target.)")
+    riaa = dspeq.curve("riaa")
+    out.append("* **Phase at 44.1 kHz.** A minimum-phase filter whose magnitude equals the RIAA "
+               "curve all the way to Nyquist (phase by the folded cepstrum) has these phase errors "
+               "to 10 kHz: " + "; ".join(
+                   f"{fs / 1000:g} kHz: {a:.2f}° (whole-band delay), {b:.2f}° (delay fitted to "
+                   f"10 kHz)" for fs in (44100.0, 48000.0, 96000.0)
+                   for a, b in [minimum_phase_floor(riaa, fs)])
+               + ". The fit reaches these figures (tables above): its phase is as good as that "
+               "of a design following the curve's magnitude everywhere. A minimum-phase filter's "
+               "phase is set by its magnitude up to Nyquist, so only an extra steep drop between "
+               "20 kHz and 22.05 kHz could move the phase below 10 kHz toward the 0.5° target at "
+               "44.1 kHz; with up to four sections that drop costs magnitude accuracy in band. "
+               "`phase_weight=` makes that trade (below); at 96 kHz the problem is gone.")
+    for pw in (0.0, 0.03, 0.1):
+        d, marks = design_quietly("riaa", 44100.0, sections=3, phase_weight=pw)
+        dev = dspeq.check(d)
+        out.append(f"  * riaa, 44.1 kHz, 3 sections, `phase_weight={pw:g}`: "
+                   f"{dev.max_abs_db:.4f} dB{marks}, {dev.max_phase_below(10_000.0):.2f}° "
+                   f"(whole-band delay), {phase_below_refit(dev, 10_000.0):.2f}° (delay to 10 kHz)")
+    return out + [""]
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--output", default=str(ROOT / "docs" / "accuracy.md"),
+                    help="Markdown file to write, or - for stdout")
+    args = ap.parse_args(argv)
+    rows = {}
+    for fs in RATES:
+        for entry in dspeq.curves():
+            for speed in SPEEDS:
+                rows[(entry["name"], speed, fs)] = measure(dspeq.curve(entry["name"], speed=speed), fs)
+    lines = header() + summary(rows) + limits() + corrections() + ["## Every curve", ""]
+    for fs in RATES:
+        lines += table(rows, fs)
+    text = "\n".join(lines)
+    if args.output == "-":
+        print(text)
+    else:
+        Path(args.output).write_text(text, encoding="utf-8")
+        print(f"wrote {args.output}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
