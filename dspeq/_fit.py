@@ -475,8 +475,8 @@ def fit(curve: Curve, fs: float, *, band: tuple[float, float] = DEFAULT_BAND,
     UserWarning
         When no number of sections meets ``tol_db`` (the best design is
         returned), and for a curve with right-half-plane zeros (whose phase a
-        minimum-phase fit cannot follow).  The warnings point at the caller of
-        :func:`dspeq.design`.
+        minimum-phase fit cannot follow).  The warnings point at the caller
+        (:func:`dspeq.design` repeats them at its own caller).
 
     Examples
     --------
@@ -494,7 +494,7 @@ def fit(curve: Curve, fs: float, *, band: tuple[float, float] = DEFAULT_BAND,
     if np.any(curve.zeros.real > 0):
         warnings.warn(f"curve {curve.name!r} has right-half-plane zeros: the fit realizes its "
                       "magnitude with a minimum-phase filter, so the phase will differ "
-                      "(method='bilinear' keeps such zeros)", UserWarning, stacklevel=3)
+                      "(method='bilinear' keeps such zeros)", UserWarning, stacklevel=2)
     z0, p0, n_dc = _matched_roots(curve, fs)
     tries = _candidates(sections, max_sections, _min_sections(z0, p0, n_dc), curve)
     seeded = _clip_seeds(p0)
@@ -526,4 +526,4 @@ def _warn_unmet(curve: Curve, fs: float, best: _Result, tol: float, prob: _Probl
         f"fit of {curve.name!r} at {fs:g} Hz reached {best.max_db:.4g} dB over "
         f"{prob.f[0]:g}-{prob.f[-1]:g} Hz with {best.sections} section(s), above tol_db={tol:g}; "
         "use a higher sample rate or allow more sections (sections=/max_sections=)",
-        UserWarning, stacklevel=4)
+        UserWarning, stacklevel=3)      # fit's caller; dspeq.design re-issues it at its own caller

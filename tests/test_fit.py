@@ -152,7 +152,7 @@ def test_unreachable_tolerance_warns_at_the_callers_line_and_returns_the_best():
     c = dspeq.curve("riaa-iec")          # order 3: two sections reach only ~0.01 dB at 44.1 kHz
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        d = dspeq.design(c, 44100.0, max_sections=2, tol_db=0.002)   # options no other test uses
+        d = dspeq.design(c, 44100.0, max_sections=2)
     msgs = [w for w in caught if "fit of" in str(w.message)]
     assert len(msgs) == 1
     text = str(msgs[0].message)
@@ -161,6 +161,13 @@ def test_unreachable_tolerance_warns_at_the_callers_line_and_returns_the_best():
     reached = float(text.split("reached ")[1].split(" dB")[0])
     assert reached == pytest.approx(dspeq.check(d).max_abs_db, rel=0.05)
     assert len(d.sos) == 2
+
+
+def test_unreachable_tolerance_warns_at_the_callers_line_when_called_directly():
+    c = dspeq.curve("riaa").with_lf_limit(3.0)
+    with pytest.warns(UserWarning, match="reached") as caught:
+        fit(c, 44100.0, tol_db=1e-6, max_sections=1)
+    assert Path(caught[0].filename) == Path(__file__)
 
 
 def test_sections_fewer_than_the_curve_needs_is_an_error():
