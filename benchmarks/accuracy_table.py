@@ -57,10 +57,7 @@ CORRECTIONS = (("iec-7.5ips", {"from_curve": "nab-7.5ips"}),
 
 def phase_below_refit(dev: dspeq.Deviation, f_hz: float) -> float:
     """Largest phase error (deg) up to ``f_hz`` after removing the delay best fitted up to f_hz."""
-    sel = dev.freqs <= f_hz
-    w = 2 * math.pi * dev.freqs[sel] / dev.fs
-    pe = dev.phase_error_deg[sel]
-    return float(np.max(np.abs(pe - w * np.dot(w, pe) / np.dot(w, w))))
+    return dev.max_phase_below(f_hz, refit_delay=True)
 
 
 def design_quietly(spec, fs: float, **options) -> tuple[dspeq.Design | None, str]:

@@ -101,10 +101,20 @@ class Deviation:
         """Largest absolute phase error (degrees) after delay removal."""
         return float(np.max(np.abs(self.phase_error_deg)))
 
-    def max_phase_below(self, f_hz: float) -> float:
-        """Largest absolute phase error (degrees) at frequencies ≤ ``f_hz``."""
+    def max_phase_below(self, f_hz: float, *, refit_delay: bool = False) -> float:
+        """Largest absolute phase error (degrees) at frequencies ≤ ``f_hz``.
+
+        With ``refit_delay`` the pure delay is fitted again over those frequencies only
+        (instead of the whole band), which is how a phase error "to 10 kHz" is often quoted.
+        """
         sel = self.freqs <= f_hz
-        return float(np.max(np.abs(self.phase_error_deg[sel]))) if np.any(sel) else 0.0
+        if not np.any(sel):
+            return 0.0
+        pe = self.phase_error_deg[sel]
+        if refit_delay:
+            w = 2 * math.pi * self.freqs[sel] / self.fs
+            pe = pe - w * float(np.dot(w, pe) / np.dot(w, w))
+        return float(np.max(np.abs(pe)))
 
     @property
     def max_group_delay_us(self) -> float:
@@ -128,6 +138,7 @@ class Deviation:
                 "max_abs_db": self.max_abs_db, "rms_db": self.rms_db, "f_at_max_hz": self.f_at_max,
                 "max_phase_deg": self.max_phase_deg,
                 "max_phase_deg_to_10k": self.max_phase_below(10_000.0),
+                "max_phase_deg_to_10k_delay_to_10k": self.max_phase_below(10_000.0, refit_delay=True),
                 "delay_samples": self.delay_samples,
                 "max_group_delay_error_us": self.max_group_delay_us}
 

@@ -25,7 +25,8 @@ __all__ = ["Design", "design", "methods", "register_method", "DEFAULT_METHOD",
 
 #: Low-frequency limit (Hz) that replaces each pole at s = 0 in a design.  3 Hz
 #: keeps the error against an ideal integrator at 20 Hz to 0.1 dB
-#: (10·log10(1 + (3/20)²)) and keeps the pole radius ≤ 0.9999 up to 192 kHz.
+#: (10·log10(1 + (3/20)²)).  Its pole radius exceeds 0.9999 from about 188 kHz (0.999902 at
+#: 192 kHz), where the fit clips it and compensates with a pole/zero pair.
 DEFAULT_LF_LIMIT_HZ = 3.0
 DEFAULT_METHOD = "fit"
 MIN_RATE, MAX_RATE = 8_000.0, 384_000.0
@@ -201,6 +202,7 @@ def design(curve: Curve | str, fs: float, method: str = DEFAULT_METHOD, *,
     _load_optional_methods()
     if method not in _METHODS:
         raise DesignError(f"unknown method {method!r}; choose from {', '.join(sorted(_METHODS))}")
+    options = {k: tuple(v) if isinstance(v, list) else v for k, v in options.items()}
     key = (c.key(), rate, method, float(lf_limit_hz), tuple(sorted(options.items())))
     hit = _CACHE.get(key)
     if hit is None or hit[0].curve.name != c.name:
