@@ -100,11 +100,16 @@ def cmd_design(args: argparse.Namespace) -> int:
     return 0
 
 
+def _db(x: float) -> str:
+    """dB figure readable at any size: 5 decimals, or 2 significant digits below 0.001 dB."""
+    return f"{x:.5f}" if x >= 1e-3 or x == 0 else f"{x:.1e}"
+
+
 def _summary_rows(dev) -> list[list[str]]:
     s = dev.summary()
     return [["band", f"{s['band_lo_hz']:g}–{s['band_hi_hz']:g} Hz"],
-            ["max |error|", f"{s['max_abs_db']:.5f} dB at {s['f_at_max_hz']:.0f} Hz"],
-            ["RMS error", f"{s['rms_db']:.5f} dB"],
+            ["max |error|", f"{_db(s['max_abs_db'])} dB at {s['f_at_max_hz']:.0f} Hz"],
+            ["RMS error", f"{_db(s['rms_db'])} dB"],
             ["delay removed", f"{s['delay_samples']:.4f} samples"],
             ["phase error", f"{s['max_phase_deg_to_10k']:.3f}° to 10 kHz, {s['max_phase_deg']:.3f}° in band"],
             ["group delay error", f"{s['max_group_delay_error_us']:.3f} µs"]]
@@ -141,8 +146,9 @@ def cmd_compare(args: argparse.Namespace) -> int:
 
     designs, rows, records = [], [], []
     curve = curve_from_args(args)
-    variants = [(name, name, {}) for name in methods()]
-    variants.insert(1, ("bilinear@1k", "bilinear", {"prewarp_hz": 1000.0}))
+    names = sorted(methods(), key=lambda m: m != "fit")      # the default method first
+    variants = [(name, name, {}) for name in names]
+    variants.insert(names.index("bilinear") + 1, ("bilinear@1k", "bilinear", {"prewarp_hz": 1000.0}))
     for name, method, options in variants:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
@@ -152,7 +158,7 @@ def cmd_compare(args: argparse.Namespace) -> int:
         rec = {"method": name, "sections": len(d.sos), "order": d.order, **dev.summary(),
                "warnings": [str(w.message) for w in caught]}
         records.append(rec)
-        rows.append([name, str(d.order), f"{dev.max_abs_db:.5f}", f"{dev.f_at_max:.0f}",
+        rows.append([name, str(d.order), _db(dev.max_abs_db), f"{dev.f_at_max:.0f}",
                      f"{dev.max_phase_below(10_000.0):.3f}", f"{dev.max_phase_deg:.3f}",
                      f"{dev.delay_samples:.3f}"])
     if args.format == "json":
