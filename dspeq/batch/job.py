@@ -74,6 +74,11 @@ class Settings:
     dither_seed : int
         Base seed; each file's dither seed is derived from it and the file's
         relative path (see :func:`file_seed`) and recorded.
+    restore_speed : bool
+        Write the output at the recorded speed: its samples labelled with the
+        rate fs / ``speed`` (no resampling; see :mod:`dspeq.batch.speed`).
+    output_rate_hz : float or None
+        Resample the output to this rate (after any speed restoration).
     """
 
     curve: str | None = None
@@ -87,12 +92,21 @@ class Settings:
     output_format: str = "same"
     subtype: str = "same"
     dither_seed: int = 0
+    restore_speed: bool = False
+    output_rate_hz: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
-        """JSON-ready dict (job-file key names; ``gain_db`` None → ``"auto"``)."""
+        """JSON-ready dict (job-file key names; ``gain_db`` None → ``"auto"``).
+
+        The rate keys appear only when set, so the settings digests of jobs
+        that do not use them are those of earlier versions.
+        """
         d = dataclasses.asdict(self)
         d["from"] = d.pop("from_curve")
         d["gain_db"] = "auto" if self.gain_db is None else self.gain_db
+        for key in _OPTIONAL_KEYS:
+            if d[key] == _OPTIONAL_KEYS[key]:
+                del d[key]
         return d
 
     def describe(self) -> str:
@@ -104,7 +118,13 @@ class Settings:
             curve += f" from {self.from_curve}"
         level = (f"gain {self.gain_db:+g} dB" if self.gain_db is not None
                  else f"gain auto (ceiling {self.ceiling_dbfs:g} dBFS)")
-        return f"{curve}; {self.method}; {level}; {self.output_format}/{self.subtype}"
+        rate = ("; speed restored" if self.restore_speed else "") + (
+            f"; resampled to {self.output_rate_hz:g} Hz" if self.output_rate_hz else "")
+        return f"{curve}; {self.method}; {level}; {self.output_format}/{self.subtype}{rate}"
+
+
+#: Settings keys left out of :meth:`Settings.to_dict` at these (default) values.
+_OPTIONAL_KEYS = {"restore_speed": False, "output_rate_hz": None}
 
 
 #: Job-file key → Settings field.
@@ -140,6 +160,20 @@ def _gain(value: Any, key: str, where: str) -> float | None:
     return _number(value, key, where, *GAIN_RANGE_DB)
 
 
+def _flag(value: Any, key: str, where: str) -> bool:
+    if not isinstance(value, bool):
+        raise JobError(f"{where}: {key} must be true or false, got {value!r}")
+    return value
+
+
+def _rate(value: Any, key: str, where: str) -> float | None:
+    from ..design import MAX_RATE, MIN_RATE
+
+    if isinstance(value, str) and value.strip().lower() == "same":
+        return None
+    return _number(value, key, where, MIN_RATE, MAX_RATE)
+
+
 def _seed(value: Any, key: str, where: str) -> int:
     if isinstance(value, bool) or not isinstance(value, int) or value < 0:
         raise JobError(f"{where}: {key} must be a non-negative integer, got {value!r}")
@@ -156,6 +190,8 @@ _CHECKS = {
     "output_format": lambda v, k, w: _choice(v, k, w, OUTPUT_FORMATS),
     "subtype": lambda v, k, w: _choice(v, k, w, SUBTYPES),
     "dither_seed": _seed,
+    "restore_speed": _flag,
+    "output_rate_hz": _rate,
 }
 
 
@@ -184,6 +220,13 @@ def validate_settings(s: Settings, where: str) -> Settings:
             raise JobError(f"{where}: {exc}") from None
     if s.output_format == "flac" and s.subtype in ("int32", "float32", "float64"):
         raise JobError(f"{where}: FLAC holds only 8/16/24-bit integers, not {s.subtype!r}")
+    if s.output_rate_hz is not None:
+        from .speed import require_soxr
+
+        try:
+            require_soxr()
+        except JobError as exc:
+            raise JobError(f"{where}: {exc}") from None
     return s
 
 
@@ -232,6 +275,8 @@ class Rule:
     settings: Settings
     index: int
     regex: re.Pattern = field(compare=False, repr=False)
+    #: Settings fields the rule's table sets itself (not inherited from [defaults]).
+    keys: frozenset[str] = frozenset()
 
     def matches(self, rel: str) -> bool:
         target = rel if "/" in self.pattern else rel.rsplit("/", 1)[-1]
@@ -260,6 +305,8 @@ class Job:
         Per-worker memory budget for first-pass samples.
     source : str
         The job file, or ``"command line"``.
+    items : ItemList or None
+        The item list of the ``[items]`` table (:mod:`dspeq.batch.items`).
     """
 
     input_root: Path
@@ -271,12 +318,17 @@ class Job:
     block_frames: int = DEFAULT_BLOCK_FRAMES
     spool_mb: float = DEFAULT_SPOOL_MB
     source: str = "command line"
+    items: Any = None
+
+    def rule_for(self, rel: str) -> Rule | None:
+        """The first rule that matches a relative path, or None."""
+        return next((rule for rule in self.rules if rule.matches(rel)), None)
 
     def settings_for(self, rel: str) -> tuple[Settings | None, int | None]:
         """(settings, 1-based rule number or None for the defaults) for a relative path."""
-        for rule in self.rules:
-            if rule.matches(rel):
-                return rule.settings, rule.index
+        rule = self.rule_for(rel)
+        if rule is not None:
+            return rule.settings, rule.index
         return (self.defaults, None) if self.defaults.curve else (None, None)
 
 
@@ -306,7 +358,7 @@ def check_folders(input_root: Path, output_root: Path, manifest_path: Path) -> N
 
 
 _JOB_KEYS = {"input", "output", "manifest", "workers", "block_frames", "spool_mb"}
-_TOP_KEYS = {"run", "defaults", "rule"}
+_TOP_KEYS = {"run", "defaults", "rule", "items"}
 
 
 def _run_table(data: dict, base: Path, where: str) -> dict[str, Any]:
@@ -364,13 +416,18 @@ def load_job(path: str | os.PathLike, *, output_root: str | os.PathLike | None =
         if "manifest" in run:
             run["manifest"] = run["output"] / data["run"]["manifest"]
     defaults = settings_from_table(_table(data, "defaults", where), Settings(), f"{where} [defaults]")
+    items = None
+    if "items" in data:
+        from .items import load_items
+
+        items = load_items(data["items"], path.parent.absolute(), run["input"], where)
     rules = []
     raw_rules = data.get("rule", [])
     if not isinstance(raw_rules, list):
         raise JobError(f"{where}: 'rule' must be an array of tables ([[rule]])")
     for i, table in enumerate(raw_rules, 1):
-        rules.append(_rule(table, defaults, i, f"{where} rule {i}"))
-    return _finish_job(run, defaults, tuple(rules), where)
+        rules.append(_rule(table, defaults, i, f"{where} rule {i}", items is not None))
+    return _finish_job(run, defaults, tuple(rules), where, items)
 
 
 def _table(data: dict, name: str, where: str) -> dict:
@@ -380,25 +437,27 @@ def _table(data: dict, name: str, where: str) -> dict:
     return table
 
 
-def _rule(table: Any, defaults: Settings, index: int, where: str) -> Rule:
+def _rule(table: Any, defaults: Settings, index: int, where: str, has_items: bool = False) -> Rule:
     if not isinstance(table, dict):
         raise JobError(f"{where}: must be a table")
     table = dict(table)
     pattern = _text(table.pop("files", None), "files", where)
     settings = settings_from_table(table, defaults, f"{where} (files = {pattern!r})")
-    if settings.curve is None:
+    if settings.curve is None and not has_items:
         raise JobError(f"{where} (files = {pattern!r}): no curve (set curve here or in [defaults])")
-    return Rule(pattern, settings, index, compile_pattern(pattern, where))
+    keys = frozenset(_KEY_TO_FIELD[k] for k in table)
+    return Rule(pattern, settings, index, compile_pattern(pattern, where), keys)
 
 
-def _finish_job(run: dict[str, Any], defaults: Settings, rules: tuple[Rule, ...], where: str) -> Job:
+def _finish_job(run: dict[str, Any], defaults: Settings, rules: tuple[Rule, ...], where: str,
+                items: Any = None) -> Job:
     manifest = run.get("manifest", run["output"] / MANIFEST_NAME)
     check_folders(run["input"], run["output"], manifest)
-    if not rules and defaults.curve is None:
+    if not rules and defaults.curve is None and items is None:
         raise JobError(f"{where}: no rule and no default curve: nothing would be processed")
     return Job(run["input"], run["output"], manifest, defaults, rules,
                workers=run.get("workers"), block_frames=run.get("block_frames", DEFAULT_BLOCK_FRAMES),
-               spool_mb=run.get("spool_mb", DEFAULT_SPOOL_MB), source=where)
+               spool_mb=run.get("spool_mb", DEFAULT_SPOOL_MB), source=where, items=items)
 
 
 def quick_job(input_root: str | os.PathLike, output_root: str | os.PathLike, settings: Settings, *,
@@ -436,16 +495,19 @@ class Task:
     prior: dict | None = None
     replace_ok: bool = False
     error: str | None = None
+    #: The item list rows that gave this file settings or notes (manifest ``item``).
+    item: dict | None = None
 
 
 @dataclass
 class Plan:
-    """What a job will do: tasks, files no rule matched, and notices from the scan."""
+    """What a job will do: tasks, files no rule matched, notices from the scan, the item list check."""
 
     job: Job
     tasks: list[Task]
     unmatched: list[str]
     notices: list[str]
+    items: Any = None
 
     @property
     def total_duration_s(self) -> float:
@@ -491,19 +553,26 @@ def plan(job: Job) -> Plan:
     """Walk the input folder and make one Task per audio file matched by a rule."""
     files, notices = _scan(job.input_root)
     tasks, unmatched = [], []
+    resolver = None
+    if job.items is not None:
+        from .items import Resolver
+
+        resolver = Resolver(job)
     for rel, path in files:
-        settings, rule = job.settings_for(rel)
+        settings, rule, item, error = (resolver.settle(rel) if resolver
+                                       else (*job.settings_for(rel), None, None))
         if settings is None:
             unmatched.append(rel)
             continue
         out_rel = str(PurePosixPath(rel).with_suffix(output_suffix(settings.output_format, path)))
         tasks.append(Task(str(path), rel, str(job.output_root / out_rel), str(job.output_root),
                           settings, file_seed(settings.dither_seed, rel), rule, _duration(path),
-                          job.block_frames, int(job.spool_mb * 2**20)))
+                          job.block_frames, int(job.spool_mb * 2**20), error=error, item=item))
     for rule in job.rules:
         if not any(t.rule == rule.index for t in tasks):
             notices.append(f"rule {rule.index} (files = {rule.pattern!r}) matches no file")
-    return Plan(job, _refuse_collisions(tasks), unmatched, notices)
+    return Plan(job, _refuse_collisions(tasks), unmatched, notices,
+                resolver.finish() if resolver else None)
 
 
 def _refuse_collisions(tasks: list[Task]) -> list[Task]:

@@ -27,8 +27,8 @@ RECORD_FIELDS = (
     "record", "status", "error", "input", "input_rel", "output", "output_rel", "input_sha256",
     "input_bytes", "output_sha256", "output_bytes", "output_audio_md5", "input_format",
     "output_format", "rate", "channels", "frames", "duration_s", "curve", "design", "deviation",
-    "level", "dither", "coding_history_row", "settings", "settings_digest", "tool", "started",
-    "elapsed_s",
+    "level", "dither", "coding_history_row", "rate_change", "item", "settings", "settings_digest",
+    "tool", "started", "elapsed_s",
 )
 
 

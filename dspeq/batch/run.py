@@ -37,7 +37,7 @@ from typing import Any
 import numpy as np
 
 from .._errors import AudioFileError, DspeqError, JobError
-from . import bwf
+from . import bwf, speed
 from .audio import Quantizer, Sink, Source, Spool, remove_stale_temps, resolve_output, sha256_file, temp_path
 from .job import Job, Plan, Task, plan, real_path, within
 from .manifest import RECORD_VERSION, Manifest, settings_digest
@@ -204,6 +204,8 @@ class _Render:
     time_reference: int = 0
     row: str = ""
     extra: dict = field(default_factory=dict)
+    rate_change: Any = None
+    counted: Any = None
 
     def filtered(self, eq) -> Iterator[np.ndarray]:
         """The source, block by block, through the equalizer (output buffer reused)."""
@@ -226,9 +228,16 @@ def _provenance(r: _Render) -> tuple[str, str, list[tuple[str, str]]]:
     s, spec = r.task.settings, r.spec
     dither = f"TPDF dither seed {r.task.seed}" if not spec.is_float else "float; no dither"
     text = (f"dspeq {_version()}; de-emphasis {r.curve.name}; {r.design.method} "
-            f"{r.design.sos.shape[0]} sections; gain {r.gain_db:+.1f} dB; {dither}")
+            f"{r.design.sos.shape[0]} sections")
+    level = f"gain {r.gain_db:+.1f} dB; {dither}"
     bits = spec.bits or (64 if spec.subtype == "float64" else 32)
-    r.row = bwf.coding_history_row(r.source.rate, bits, r.source.channels, text)
+    rc = r.rate_change
+    if rc is None:
+        r.row = bwf.coding_history_row(r.source.rate, bits, r.source.channels, f"{text}; {level}")
+    else:                           # two steps, two rows: de-emphasis at the transfer rate, then the rate
+        r.row = (bwf.coding_history_row(r.source.rate, bits, r.source.channels, text)
+                 + bwf.coding_history_row(rc.output_rate, bits, r.source.channels,
+                                          f"dspeq {_version()}; {rc.describe()}; {level}"))
     prior = "".join(row + bwf.CRLF for row in bwf.history_rows(r.history_in))
     history = prior + r.row
     description = (f"Playback de-emphasis {r.curve.name} ({s.curve}) applied by dspeq to the flat "
@@ -249,7 +258,8 @@ def _write(r: _Render, blocks: Iterable[np.ndarray], final: Path) -> dict[str, A
     history, description, tags = _provenance(r)
     gain = 10.0 ** (r.gain_db / 20.0)
     quant = None if r.spec.is_float else Quantizer(r.spec.bits, gain, r.task.seed)
-    sink = Sink(final, r.spec, r.source.rate, r.source.channels, quant, gain, tags)
+    rate = r.rate_change.output_rate if r.rate_change else r.source.rate
+    sink = Sink(final, r.spec, rate, r.source.channels, quant, gain, tags)
     try:
         for y in blocks:
             sink.write(y)
@@ -267,6 +277,15 @@ def _write(r: _Render, blocks: Iterable[np.ndarray], final: Path) -> dict[str, A
             "output_peak_dbfs": _db(peak), "clips": quant.clips if quant is not None else 0}
 
 
+def _stream(r: _Render, eq) -> Iterable[np.ndarray]:
+    """The filtered blocks, resampled when the settings ask for another output rate."""
+    rc = r.rate_change
+    if rc is None or rc.resampler is None:
+        return r.filtered(eq)
+    r.counted = speed.Counted(speed.resample_blocks(r.filtered(eq), rc, r.source.channels, r.dtype))
+    return r.counted
+
+
 def _render(r: _Render, final: Path) -> dict[str, Any]:
     from ..stream import Equalizer
 
@@ -275,16 +294,16 @@ def _render(r: _Render, final: Path) -> dict[str, Any]:
     if s.gain_db is not None or r.spec.is_float:
         r.mode = "fixed" if s.gain_db is not None else "float"
         r.gain_db = s.gain_db or 0.0
-        out = _write(r, r.filtered(eq), final)
+        out = _write(r, _stream(r, eq), final)
         r.filtered_peak = 10 ** ((out["output_peak_dbfs"] or -math.inf) / 20) / 10 ** (r.gain_db / 20)
         return out
     from .._kernels import peak_abs
 
     r.mode = "peak-safe"
-    spool = Spool(r.source.frames, r.source.channels, r.dtype, r.task.spool_bytes,
-                  temp_path(final, ".spool"))
+    frames = r.rate_change.frames_out(r.source.frames) if r.rate_change else r.source.frames
+    spool = Spool(frames, r.source.channels, r.dtype, r.task.spool_bytes, temp_path(final, ".spool"))
     try:
-        for y in r.filtered(eq):
+        for y in _stream(r, eq):
             r.filtered_peak = max(r.filtered_peak, peak_abs(y))
             spool.append(y)
         r.gain_db = auto_gain_db(r.filtered_peak, s.ceiling_dbfs)
@@ -323,18 +342,27 @@ def _record(r: _Render, out: dict[str, Any], input_sha: str, input_bytes: int, t
         "design": r.design.to_dict(), "deviation": deviation, "level": level,
         "dither": None if r.spec.is_float else {"kind": "TPDF", "generator": "splitmix64",
                                                   "seed": task.seed, "bits": r.spec.bits},
-        "coding_history_row": r.row.rstrip("\r\n"), "settings": s.to_dict(),
+        "coding_history_row": r.row.rstrip("\r\n"), "rate_change": _rate_record(r), "item": task.item,
+        "settings": s.to_dict(),
         "settings_digest": settings_digest(s.to_dict()), "tool": {"name": "dspeq", "version": _version()},
         "started": r.started.isoformat(timespec="seconds"), "elapsed_s": time.perf_counter() - t0,
     }
 
 
+def _rate_record(r: _Render) -> dict | None:
+    rc = r.rate_change
+    if rc is None:
+        return None
+    return rc.to_dict(r.counted.frames if r.counted is not None else r.source.frames_read)
+
+
 def _process(task: Task, input_sha: str, input_bytes: int, t0: float, started: datetime) -> dict:
     with Source(task.input_path) as src:
         curve, design, deviation = _design(task.settings, src.rate)
-        spec = resolve_output(task.settings.output_format, task.settings.subtype, src)
+        rc = speed.rate_change(task.settings, src.rate)
+        spec = resolve_output(task.settings.output_format, task.settings.subtype, speed.sized_like(src, rc))
         final = _prepare_output(task)
-        r = _Render(task, src, spec, curve, design, _work_dtype(src, spec), started)
+        r = _Render(task, src, spec, curve, design, _work_dtype(src, spec), started, rate_change=rc)
         r.history_in, r.time_reference = src.read_history()
         out = _render(r, final)
         return _record(r, out, input_sha, input_bytes, t0, deviation)
@@ -343,7 +371,8 @@ def _process(task: Task, input_sha: str, input_bytes: int, t0: float, started: d
 def _failure(task: Task, error: str, t0: float, started: datetime, input_sha: str | None) -> dict:
     return {"record": RECORD_VERSION, "status": "failed", "error": error, "input": task.input_path,
             "input_rel": task.rel, "output": task.output_path, "input_sha256": input_sha,
-            "settings": task.settings.to_dict(), "settings_digest": settings_digest(task.settings.to_dict()),
+            "item": task.item, "settings": task.settings.to_dict(),
+            "settings_digest": settings_digest(task.settings.to_dict()),
             "tool": {"name": "dspeq", "version": _version()},
             "started": started.isoformat(timespec="seconds"), "elapsed_s": time.perf_counter() - t0}
 
@@ -468,6 +497,8 @@ class Summary:
     audio_s: float = 0.0
     wall_s: float = 0.0
     failures: list[tuple[str, str]] = field(default_factory=list)
+    report_path: str | None = None
+    report_error: str | None = None
 
     def add(self, res: Result) -> None:
         setattr(self, res.status, getattr(self, res.status) + 1)
@@ -508,7 +539,7 @@ def _prior(rec: dict | None) -> dict | None:
 
 def run_job(job: Job, *, workers: int | None = None, scheduler: str | None = None,
             progress: bool = False, on_result: Callable[[Result], None] | None = None,
-            the_plan: Plan | None = None) -> Summary:
+            the_plan: Plan | None = None, report: bool = True) -> Summary:
     """Plan and run a job; append every result to the manifest as it arrives.
 
     Parameters
@@ -523,6 +554,10 @@ def run_job(job: Job, *, workers: int | None = None, scheduler: str | None = Non
         Called with each Result (e.g. to print failures).
     the_plan : Plan, optional
         An already computed plan of ``job``.
+    report : bool
+        Write ``report.html`` in the output folder at the end
+        (:func:`dspeq.batch.report.write_report`); if it cannot be written,
+        ``Summary.report_error`` says why.
 
     Raises
     ------
@@ -548,4 +583,11 @@ def run_job(job: Job, *, workers: int | None = None, scheduler: str | None = Non
             if on_result is not None:
                 on_result(res)
     summary.wall_s = time.perf_counter() - t0
+    if report:
+        from .report import write_report
+
+        try:
+            summary.report_path = str(write_report(job, p))
+        except OSError as exc:      # e.g. a read-only output folder: every file has failed already
+            summary.report_error = _error_text(exc)
     return summary

@@ -17,7 +17,7 @@ from ._common import CAUTION, add_curve_args, fail
 __all__ = ["register", "cmd_batch", "settings_from_args"]
 
 _PROCESSING = ("curve", "from_curve", "reference_hz", "method", "lf_limit", "gain", "ceiling",
-               "output_format", "subtype", "seed", "manifest")
+               "output_format", "subtype", "seed", "manifest", "restore_speed", "output_rate")
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -53,6 +53,12 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--seed", type=int, default=None, metavar="N",
                    help=f"base dither seed (default {d.dither_seed}); each file's seed is derived "
                         "from it and the file's path, and recorded")
+    p.add_argument("--restore-speed", action="store_true", default=None,
+                   help="write the output at the recorded speed: the samples unchanged, labelled with "
+                        "the rate fs / R of --speed R (lossless; fs / R must be a whole number of Hz)")
+    p.add_argument("--output-rate", type=float, default=None, metavar="HZ",
+                   help="resample the output to HZ (after --restore-speed), with soxr "
+                        "(pip install 'dspeq[resample]')")
     p.add_argument("--manifest", metavar="PATH",
                    help="quick form: manifest file (default OUTPUT_DIR/dspeq-manifest.jsonl)")
     p.add_argument("--output-dir", metavar="DIR", help="job file: write to DIR instead of the job's output")
@@ -91,7 +97,8 @@ def settings_from_args(args: argparse.Namespace):
     given = {"curve": args.curve, "speed": args.speed, "from_curve": args.from_curve,
              "reference_hz": args.reference_hz, "method": args.method, "lf_limit_hz": args.lf_limit,
              "gain_db": _gain(args.gain), "ceiling_dbfs": args.ceiling,
-             "output_format": args.output_format, "subtype": args.subtype, "dither_seed": args.seed}
+             "output_format": args.output_format, "subtype": args.subtype, "dither_seed": args.seed,
+             "restore_speed": args.restore_speed, "output_rate_hz": args.output_rate}
     return dataclasses.replace(Settings(), **{k: v for k, v in given.items() if v is not None})
 
 
@@ -116,18 +123,32 @@ def _job(args: argparse.Namespace):
     return quick_job(args.paths[0], args.paths[1], settings_from_args(args), manifest=args.manifest)
 
 
+def _item_origin(t) -> str:
+    if not t.item:
+        return ""
+    return f"; {t.item['list']} row {', '.join(str(r['row']) for r in t.item['rows'])}"
+
+
+def _print_checks(p, file=None) -> None:
+    if p.items is not None:
+        for line in p.items.lines():
+            print(f"  items: {line}", file=file or sys.stdout)
+
+
 def _print_plan(p) -> None:
     job = p.job
     print(f"job:      {job.source}\ninput:    {job.input_root}\noutput:   {job.output_root}\n"
           f"manifest: {job.manifest_path}")
     for t in p.tasks:
         rel_out = Path(t.output_path).relative_to(job.output_root).as_posix()
-        origin = f"rule {t.rule}" if t.rule else "defaults"
+        origin = f"rule {t.rule}" if t.rule else ("items" if t.item else "defaults")
         state = f"  REFUSED: {t.error}" if t.error else ""
         print(f"  {t.rel} -> {rel_out}  [{origin}] {t.settings.describe()}; "
-              f"{t.duration_s:.1f} s{state}")
+              f"{t.duration_s:.1f} s{_item_origin(t)}{state}")
     for rel in p.unmatched:
-        print(f"  {rel}: no rule matches; not processed")
+        if p.items is None:
+            print(f"  {rel}: no rule matches; not processed")
+    _print_checks(p)
     for note in p.notices:
         print(f"  note: {note}")
     print(f"{len(p.tasks)} file(s), {p.total_duration_s / 3600:.3f} h of audio; "
@@ -158,6 +179,7 @@ def cmd_batch(args: argparse.Namespace) -> int:
     if args.dry_run:
         _print_plan(the_plan)
         return 0
+    _print_checks(the_plan, sys.stderr)          # the item list check, before anything is processed
     progress = sys.stderr.isatty() if args.progress is None else args.progress
     scheduler = args.scheduler or args.cluster
     try:
@@ -169,4 +191,8 @@ def cmd_batch(args: argparse.Namespace) -> int:
     for note in the_plan.notices:
         print(f"note: {note}", file=sys.stderr)
     print(summary.text())
-    return 1 if summary.failed else 0
+    if summary.report_path:
+        print(f"report: {summary.report_path}")
+    if summary.report_error:
+        print(f"dspeq: error: the report could not be written ({summary.report_error})", file=sys.stderr)
+    return 1 if summary.failed or summary.report_error else 0
