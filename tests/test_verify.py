@@ -12,7 +12,8 @@ from dspeq.check import check
 from dspeq.verify import AGREEMENT_DB, verify
 
 
-@pytest.mark.parametrize("name,fs,method", [("riaa", 44100, "matched-z"),
+@pytest.mark.parametrize("name,fs,method", [("riaa", 44100, "fit"), ("riaa-iec", 48000, "fit"),
+                                            ("riaa", 44100, "matched-z"),
                                             ("iec-15ips", 48000, "closed-form"),
                                             ("nab-7.5ips", 96000, "bilinear")])
 def test_measured_agrees_with_analytic(name, fs, method):
