@@ -4,7 +4,8 @@ A job (a TOML file, or the command line's quick form) maps files of an input
 folder to curves and settings; :func:`plan` turns it into tasks,
 :func:`run_job` runs them in local worker processes or on a Dask cluster,
 writes a mirrored output tree without touching the originals, and keeps a
-JSON Lines manifest of what was done.  See ``batch/README.md``.
+JSON Lines manifest of what was done and an HTML report (``report.html``).
+A collection's item list (CSV) may drive the settings per file.  See ``batch/README.md``.
 
 Examples
 --------
@@ -15,9 +16,12 @@ Examples
 
 from __future__ import annotations
 
+from .items import ItemList, load_items
 from .job import Job, Plan, Settings, Task, load_job, plan, quick_job
 from .manifest import Manifest, read_records
+from .report import render_report, write_report
 from .run import Result, Summary, process_task, run_job, run_tasks
 
 __all__ = ["Job", "Plan", "Settings", "Task", "load_job", "plan", "quick_job", "Manifest", "read_records",
-           "Result", "Summary", "process_task", "run_job", "run_tasks"]
+           "Result", "Summary", "process_task", "run_job", "run_tasks", "ItemList", "load_items",
+           "render_report", "write_report"]
