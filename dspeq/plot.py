@@ -53,15 +53,18 @@ def figure_designs(designs: Sequence, band: tuple[float, float] = DEFAULT_BAND, 
         ax_ph.semilogx(dev.freqs, dev.phase_error_deg, lw=1.2,
                        label=f"{d.label} (delay {dev.delay_samples:.2f} smp removed)")
     ax_mag.set_ylabel("magnitude (dB re reference)")
-    ax_err.set_ylabel("magnitude error (dB)\nsymmetric log scale")
+    ax_err.set_ylabel("magnitude error (dB)")
     ax_ph.set_ylabel("phase error (°)\nafter delay removal")
     ax_ph.set_xlabel("frequency (Hz)")
     for ax in (ax_mag, ax_err, ax_ph):
         ax.grid(True, which="both", alpha=0.3)
         ax.legend(fontsize=8, loc="best")
     ax_err.axhline(0.0, color="black", lw=0.8)
-    # Errors span 1e-4 dB (fit) to 10 dB (bilinear near Nyquist): a symmetric log scale shows both.
-    ax_err.set_yscale("symlog", linthresh=1e-3, linscale=0.5)
+    # Errors may span 1e-4 dB (fit) to 10 dB (bilinear near Nyquist): then a symmetric log scale
+    # shows both; errors all of one size read better on a linear scale.
+    if max(dev.max_abs_db for dev in devs) > 0.05:
+        ax_err.set_yscale("symlog", linthresh=1e-3, linscale=0.5)
+        ax_err.set_ylabel("magnitude error (dB)\nsymmetric log scale")
     ax_ph.set_xlim(f[0], f[-1])
     fig.suptitle(title or f"{d0.curve.name} at {d0.fs:g} Hz ({d0.curve.describe_roots()})")
     fig.tight_layout()
