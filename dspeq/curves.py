@@ -142,7 +142,7 @@ class Curve:
         z, p = _as_roots(z, "zeros"), _as_roots(p, "poles")
         if np.any(p.real > 0):
             raise CurveError(
-                f"pole(s) {p[p.real > 0]!r} rad/s lie in the right half-plane: an unstable curve "
+                f"pole(s) at {', '.join(f'{complex(x):g}' for x in p[p.real > 0])} rad/s lie in the right half-plane: an unstable curve "
                 "cannot be realized (did you invert a curve with a right-half-plane zero?)")
         k = float(np.real(gain))
         if not math.isfinite(k) or k == 0.0:
