@@ -141,8 +141,9 @@ class Curve:
         z, p = _cancel(_as_roots(zeros, "zeros"), _as_roots(poles, "poles"))
         z, p = _as_roots(z, "zeros"), _as_roots(p, "poles")
         if np.any(p.real > 0):
+            bad = ", ".join(f"{complex(x):g}" for x in p[p.real > 0])
             raise CurveError(
-                f"pole(s) at {', '.join(f'{complex(x):g}' for x in p[p.real > 0])} rad/s lie in the right half-plane: an unstable curve "
+                f"pole(s) at {bad} rad/s lie in the right half-plane: an unstable curve "
                 "cannot be realized (did you invert a curve with a right-half-plane zero?)")
         k = float(np.real(gain))
         if not math.isfinite(k) or k == 0.0:
