@@ -14,6 +14,23 @@ transposed recursion in the same order::
     z0     = (b1 * x - a1 * y) + z1
     z1     = b2 * x - a2 * y
 
+Speed
+-----
+The recursion is a dependency chain: each sample of a section needs the
+previous one through a multiply and three additions, about 13 cycles on
+current x86 cores, whatever the code around it. A single channel therefore
+runs at that latency (about 2.4x :func:`scipy.signal.sosfilt`, whose C loop
+adds its own overhead to the same chain). Independent channels are where
+the speed comes from: the generated loops hold every coefficient and state
+in local variables and process up to :data:`GROUP_LANES` channels in the
+same iteration, so their chains overlap, and they are compiled with LLVM's
+SLP vectorizer on, which packs the channels of a group into SIMD registers
+(lane-wise IEEE operations, so the results are unchanged). Indices are
+unsigned so that no negative-index wraparound code sits in the loop. Frames
+are processed in chunks of :data:`FLUSH_EVERY`, every group of a chunk
+before the next chunk, which keeps the data in the L1/L2 cache for any
+channel count.
+
 Compile cache
 -------------
 ``cache=True`` makes numba store machine code on disk. numba looks for a
@@ -25,28 +42,45 @@ sets ``NUMBA_CACHE_DIR`` to ``<tempdir>/dspeq-numba-cache-<uid>`` and tries
 again; if even that fails it compiles without a disk cache. Set
 ``NUMBA_CACHE_DIR`` yourself to choose the place.
 
-The SOS loops are generated from a template (one per number of sections and
-channel layout); their code objects carry this file's name, so numba's cache
-keys them to this file's content and discards them whenever it changes.
+The SOS loops are generated from a template (one per number of sections,
+output stage and rounding); their code objects carry this file's name and
+a name that spells out every generation parameter, so numba's cache keys
+them to this file's content and discards them whenever it changes.
 
 Denormal numbers
 ----------------
 A recursive filter whose input falls to digital silence decays toward zero
-and can get stuck at subnormal values, which x86 processors handle about 50x
-slower. Every :data:`FLUSH_EVERY` frames the loops set state values whose
-magnitude is below :data:`FLUSH_BELOW` (1e-200, i.e. -4000 dBFS) to exactly
-zero. Between flushes the recursion is untouched, so on ordinary audio (whose
-states never come near 1e-200) the output stays bit-identical to
-``sosfilt``; on a decaying tail the output differs from ``sosfilt`` by less
-than 1e-190, far below -300 dBFS.
+and can get stuck at subnormal values, which many x86 processors handle
+about 50x slower. Every :data:`FLUSH_EVERY` frames the loops set state
+values whose magnitude is below :data:`FLUSH_BELOW` (1e-200, i.e.
+-4000 dBFS) to exactly zero. Between flushes the recursion is untouched, so
+on ordinary audio (whose states never come near 1e-200) the output stays
+bit-identical to ``sosfilt``; on a decaying tail the output differs from
+``sosfilt`` by less than 1e-190, far below -300 dBFS.
 
 Dither
 ------
-:func:`quantize_tpdf` draws its dither from splitmix64 (S. Vigna's
-64-bit mixing generator, public domain), whose whole state is one uint64 kept
-by the caller, so blocks continue one sequence exactly. Each 64-bit draw is
-split into two independent 32-bit uniforms in [-1/2, 1/2) LSB whose sum is
-TPDF (Lipshitz, Wannamaker & Vanderkooy, JAES 40(5), 1992).
+TPDF dither (Lipshitz, Wannamaker & Vanderkooy, JAES 40(5), 1992) is the
+sum of two independent uniform values. Here it is a pure function of the
+sample's index ``k`` in the file (frame-major: ``k = frame * channels +
+channel``) and a 64-bit seed, so blocks of any size, channel groups and
+SIMD lanes all draw the same values, and the loop vectorizes:
+
+* ``e = k >> 32``; ``z = splitmix64(seed + (e + 1) * 0x9E3779B97F4A7C15)``
+  (S. Vigna's 64-bit mixer, public domain); ``a`` and ``b`` are the low and
+  high 32 bits of ``z`` (a fresh key every 2**32 samples);
+* ``x = (k + a) mod 2**32`` goes through C. Wellons' "lowbias32" integer
+  hash (public domain; nullprogram.com, 2018) with ``b`` mixed in after
+  the first multiplication::
+
+      x ^= x >> 16; x *= 0x7FEB352D; x ^= b; x ^= x >> 15; x *= 0x846CA68B; x ^= x >> 16
+
+* the two 16-bit halves ``u1, u2`` of ``x`` are the uniforms:
+  ``d = (u1 + u2 - 65535) / 65536`` LSB, a triangular density on
+  (-1, 1) LSB in steps of 2**-16 LSB, exactly zero-mean.
+
+A 32-bit hash vectorizes with 32-bit SIMD multiplies, where a 64-bit
+generator per sample cost more than the whole filter.
 """
 
 from __future__ import annotations
@@ -63,8 +97,13 @@ import numpy as np
 __all__ = [
     "FLUSH_BELOW",
     "FLUSH_EVERY",
-    "filter_unchecked",
+    "GROUP_LANES",
     "MAX_UNROLLED_SECTIONS",
+    "PCM_BITS",
+    "channel_passes",
+    "check_state",
+    "filter_quantize_unchecked",
+    "filter_unchecked",
     "peak_abs",
     "quantize_tpdf",
     "seed_state",
@@ -72,13 +111,16 @@ __all__ = [
     "tpdf_dither",
 ]
 
-#: Frames between two flushes of tiny filter state values.
+#: Frames between two flushes of tiny filter state values (also the chunk
+#: length of the loops).
 FLUSH_EVERY = 1024
 #: State values with a smaller magnitude are set to zero at each flush.
 FLUSH_BELOW = 1e-200
 #: Cascades up to this many sections run in one fused loop; longer ones are
 #: split into consecutive runs of at most this many sections.
 MAX_UNROLLED_SECTIONS = 4
+#: Channel group widths of the generated loops (see :func:`channel_passes`).
+GROUP_LANES = (4, 2, 1)
 
 # --------------------------------------------------------------------------
 # Lazy, cached compilation
@@ -129,6 +171,34 @@ def _jit(py_func: Callable) -> Callable:
         return numba.njit(nogil=True)(py_func)
 
 
+def _with_slp_vectorizer(dispatcher) -> None:
+    """Make ``dispatcher`` compile its signatures with LLVM's SLP vectorizer on.
+
+    numba reads ``config.SLP_VECTORIZE`` (environment ``NUMBA_SLP_VECTORIZE``,
+    off by default) when it builds the optimization passes of a compilation.
+    It is switched on only while this dispatcher compiles, under numba's
+    global compiler lock, so other numba code in the process is unaffected.
+    The vectorizer packs identical scalar operations of neighbouring
+    channels into SIMD instructions; it does not reorder floating-point
+    arithmetic, so results are bit-for-bit those of the scalar code.
+    """
+    from numba.core import config
+    from numba.core.compiler_lock import global_compiler_lock
+
+    plain = dispatcher.compile
+
+    def compile_vectorized(sig):
+        with global_compiler_lock:
+            before = getattr(config, "SLP_VECTORIZE", 0)
+            config.SLP_VECTORIZE = 1
+            try:
+                return plain(sig)
+            finally:
+                config.SLP_VECTORIZE = before
+
+    dispatcher.compile = compile_vectorized
+
+
 class _Kernel:
     """A plain Python loop that is compiled with numba on its first call.
 
@@ -139,11 +209,14 @@ class _Kernel:
     helpers : tuple of _Kernel
         Kernels that ``py_func`` calls through a module-level name; the
         compiled version calls their compiled versions instead.
+    slp : bool
+        Compile with the SLP vectorizer (see :func:`_with_slp_vectorizer`).
     """
 
-    def __init__(self, py_func: Callable, helpers: tuple[_Kernel, ...] = ()):
+    def __init__(self, py_func: Callable, helpers: tuple[_Kernel, ...] = (), slp: bool = False):
         self.py_func = py_func
         self.helpers = helpers
+        self.slp = slp
         self._compiled: Callable | None = None
 
     @property
@@ -152,7 +225,10 @@ class _Kernel:
         if self._compiled is None:
             with _COMPILE_LOCK:
                 if self._compiled is None:
-                    self._compiled = _jit(self._with_compiled_helpers())
+                    dispatcher = _jit(self._with_compiled_helpers())
+                    if self.slp:
+                        _with_slp_vectorizer(dispatcher)
+                    self._compiled = dispatcher
         return self._compiled
 
     def _with_compiled_helpers(self) -> Callable:
@@ -171,12 +247,115 @@ class _Kernel:
 
 
 # --------------------------------------------------------------------------
-# SOS filter loops, generated per number of sections and channel layout
+# Dither: counter-based TPDF (see the module docstring)
+# --------------------------------------------------------------------------
+
+_U64, _U32 = np.uint64, np.uint32
+_GOLDEN = _U64(0x9E3779B97F4A7C15)
+_MIX1 = _U64(0xBF58476D1CE4E5B9)
+_MIX2 = _U64(0x94D049BB133111EB)
+_SHIFT27, _SHIFT30, _SHIFT31, _SHIFT32 = _U64(27), _U64(30), _U64(31), _U64(32)
+_ONE64 = _U64(1)
+_LOW32 = _U64(0xFFFFFFFF)
+_EPOCH = 2**32
+# lowbias32 (C. Wellons, hash-prospector, public domain).
+_HASH1, _HASH2 = _U32(0x7FEB352D), _U32(0x846CA68B)
+_S15, _S16 = _U32(15), _U32(16)
+_LOW16 = _U32(0xFFFF)
+_HALF_SPAN = np.int32(65535)
+_STEP = 2.0**-16
+
+
+def _epoch_keys(seed, epoch):
+    """The two 32-bit keys (a, b) of the dither for samples ``epoch * 2**32 ...``.
+
+    One splitmix64 output (pure Python: uint64 arithmetic wraps, numpy may
+    warn about overflow).
+    """
+    z = seed + (epoch + _ONE64) * _GOLDEN
+    z = (z ^ (z >> _SHIFT30)) * _MIX1
+    z = (z ^ (z >> _SHIFT27)) * _MIX2
+    z = z ^ (z >> _SHIFT31)
+    return _U32(z & _LOW32), _U32(z >> _SHIFT32)
+
+
+def _tpdf_at(x, b):
+    """TPDF value in LSB from the keyed counter ``x`` (uint32) and key ``b``."""
+    x = _U32(x ^ _U32(x >> _S16))
+    x = _U32(x * _HASH1)
+    x = _U32(x ^ b)
+    x = _U32(x ^ _U32(x >> _S15))
+    x = _U32(x * _HASH2)
+    x = _U32(x ^ _U32(x >> _S16))
+    return np.float64(np.int32(_U32(x >> _S16) + _U32(x & _LOW16)) - _HALF_SPAN) * _STEP
+
+
+def _span_keys(seed, k):
+    """(low 32 bits of k, a0, b0, a1, b1, samples before the next epoch) for index ``k``."""
+    epoch = k >> _SHIFT32
+    a0, b0 = _epoch_keys(seed, epoch)
+    a1, b1 = _epoch_keys(seed, epoch + _ONE64)
+    return _U32(k & _LOW32), a0, b0, a1, b1, np.int64(_EPOCH) - np.int64(k & _LOW32)
+
+
+def _tpdf_fill(seed, k, out):
+    """``out[j]`` = dither of sample ``k + j``."""
+    base, a0, b0, a1, b1, wrap = _span_keys(seed, k)
+    for j in range(out.shape[0]):
+        late = j >= wrap
+        out[j] = _tpdf_at(_U32(_U32(j) + base + (a1 if late else a0)), b1 if late else b0)
+
+
+def _quantize_span(v, scale, lo, hi, lsb, dither, seed, k, out):
+    """Quantize ``v * scale`` (+ dither of samples ``k ...``) into ``out``; see quantize_tpdf.
+
+    Returns (clipped samples, NaN samples). Branch-free, so LLVM's loop
+    vectorizer handles it.
+    """
+    base, a0, b0, a1, b1, wrap = _span_keys(seed, k)
+    clips = 0
+    nans = 0
+    for j in range(v.shape[0]):
+        late = j >= wrap
+        d = _tpdf_at(_U32(_U32(j) + base + (a1 if late else a0)), b1 if late else b0)
+        r = np.rint(np.float64(v[j]) * scale + d * dither)
+        nan = r != r
+        q = min(max(r, lo), hi)
+        clips += (q != r) & (r == r)
+        nans += nan
+        out[j] = np.int32(0.0 if nan else q * lsb)
+    return clips, nans
+
+
+_EPOCH_KEYS = _Kernel(_epoch_keys)
+_TPDF_AT = _Kernel(_tpdf_at)
+_SPAN_KEYS = _Kernel(_span_keys, helpers=(_EPOCH_KEYS,))
+_TPDF_FILL = _Kernel(_tpdf_fill, helpers=(_SPAN_KEYS, _TPDF_AT))
+_QUANTIZE = _Kernel(_quantize_span, helpers=(_SPAN_KEYS, _TPDF_AT))
+#: Word lengths the quantizer writes.
+PCM_BITS = (8, 16, 24, 32)
+
+
+def _pcm_params(gain: float, bits: int) -> np.ndarray:
+    """[scale, lo, hi, lsb, dither] of the quantizer for ``bits``-bit output."""
+    if bits not in PCM_BITS:
+        raise ValueError(f"bits must be one of {PCM_BITS}, got {bits!r}")
+    top = 2.0 ** (bits - 1)
+    return np.array([float(gain) * top, -top, top - 1.0, 2.0 ** (32 - bits),
+                     1.0 if bits < 32 else 0.0])
+
+
+# --------------------------------------------------------------------------
+# SOS filter loops, generated per number of sections, lanes and output stage
 # --------------------------------------------------------------------------
 #
-# Layout "1" and "2": mono and stereo, every state value a local scalar.
-# Layout "n": any channel count, one small local array of states per section
-# and per delay, the channel loop innermost (numba vectorizes it).
+# One loop per (sections, lanes, stage, rounding) serves the channels
+# [c0, c1) in groups of ``lanes``: frames in chunks of FLUSH_EVERY, in each
+# chunk every group in turn, the states and coefficients of a group in
+# local scalars. Stage "float" stores the output in ``out`` (float32 or
+# float64); stage "pcm" (one pass over all channels) keeps the chunk's
+# output in a small float64 buffer and quantizes it (_quantize_span) into
+# ``out`` (int32). Both track the largest |output| per lane.
 
 
 def _coefficient_lines(n_sections: int) -> list[str]:
@@ -187,117 +366,157 @@ def _coefficient_lines(n_sections: int) -> list[str]:
     return lines
 
 
-def _section_lines(n_sections: int, z0: str, z1: str, indent: str) -> list[str]:
-    """One sample through every section, exactly as scipy's ``_sosfilt``.
+def _section_lines(n_sections: int, lanes: int, indent: str) -> list[str]:
+    """One frame through every section, exactly as scipy's ``_sosfilt``.
 
-    ``z0`` and ``z1`` name the two delays of section ``{s}`` (row ``{s2}``
-    and ``{s2p1}`` in the array layout).
+    The same statement for every lane follows each other (what the SLP
+    vectorizer packs); ``v{c}`` carries lane ``c`` from section to section.
     """
     lines = []
     for s in range(n_sections):
-        d0 = z0.format(s=s, s2=2 * s, s2p1=2 * s + 1)
-        d1 = z1.format(s=s, s2=2 * s, s2p1=2 * s + 1)
-        lines += [
-            f"{indent}w = b0_{s} * v + {d0}",
-            f"{indent}{d0} = b1_{s} * v - a1_{s} * w + {d1}",
-            f"{indent}{d1} = b2_{s} * v - a2_{s} * w",
-            f"{indent}v = w",
-        ]
+        for template in (
+            "w{c} = b0_{s} * v{c} + z0_{s}_{c}",
+            "z0_{s}_{c} = b1_{s} * v{c} - a1_{s} * w{c} + z1_{s}_{c}",
+            "z1_{s}_{c} = b2_{s} * v{c} - a2_{s} * w{c}",
+            "v{c} = w{c}",
+        ):
+            lines += [indent + template.format(s=s, c=c) for c in range(lanes)]
     return lines
 
 
-def _flush_lines(names: list[str], indent: str) -> list[str]:
-    lines = []
-    for name in names:
-        lines += [f"{indent}if abs({name}) < FLUSH_BELOW:", f"{indent}    {name} = 0.0"]
+def _group_lines(n_sections: int, lanes: int, stage: str, round32: bool) -> list[str]:
+    """One chunk of frames for each group of ``lanes`` channels in [c0, c1)."""
+    states = [(s, c, k) for s in range(n_sections) for c in range(lanes) for k in (0, 1)]
+    lines = [f"        while g + {lanes} <= c1:"]
+    lines += [f"            z{k}_{s}_{c} = zi[{s}, g + {c}, {k}]" for s, c, k in states]
+    lines += ["            i = np.uint64(start * channels + g)", "            j = np.uint64(g)",
+              "            for _ in range(nb):"]
+    ind = " " * 16
+    lines += [f"{ind}v{c} = np.float64(xf[i + U{c}])" for c in range(lanes)]
+    lines += _section_lines(n_sections, lanes, ind)
+    # A select, not max(): numba's max() handles NaN with extra branches.
+    lines += [f"{ind}a{c} = abs(v{c})" for c in range(lanes)]
+    lines += [f"{ind}pk{c} = a{c} if a{c} > pk{c} else pk{c}" for c in range(lanes)]
+    if stage == "float":
+        lines += [f"{ind}of[i + U{c}] = v{c}" for c in range(lanes)]
+    else:
+        value = "np.float64(np.float32(v{c}))" if round32 else "v{c}"
+        lines += [f"{ind}buf[j + U{c}] = {value.format(c=c)}" for c in range(lanes)]
+    lines += [f"{ind}i += uch", f"{ind}j += uch"]
+    lines += [f"            zi[{s}, g + {c}, {k}] = z{k}_{s}_{c}" for s, c, k in states]
+    # The flush works on the stored states (a loop compiles faster than one
+    # statement per state); the next chunk loads them again.
+    lines += ["            for s in range(zi.shape[0]):",
+              f"                for c in range(g, g + {lanes}):",
+              "                    for k in range(2):",
+              "                        if abs(zi[s, c, k]) < FLUSH_BELOW:",
+              "                            zi[s, c, k] = 0.0",
+              f"            g += {lanes}"]
     return lines
 
 
-def _scalar_layout_source(name: str, n_sections: int, channels: int) -> str:
-    """Loop with every state in a local scalar (``channels`` fixed)."""
-    states = [(s, c, k) for s in range(n_sections) for c in range(channels) for k in (0, 1)]
-    lines = [f"def {name}(sos, x, y, zi):", *_coefficient_lines(n_sections)]
-    lines += [f"    z{k}_{s}_{c} = zi[{s}, {c}, {k}]" for s, c, k in states]
-    lines += [
-        "    frames = x.shape[0]",
-        "    for start in range(0, frames, FLUSH_EVERY):",
-        "        for n in range(start, min(start + FLUSH_EVERY, frames)):",
-    ]
-    for c in range(channels):
-        lines.append(f"            v = np.float64(x[n, {c}])")
-        lines += _section_lines(n_sections, f"z0_{{s}}_{c}", f"z1_{{s}}_{c}", " " * 12)
-        lines.append(f"            y[n, {c}] = v")
-    lines += _flush_lines([f"z{k}_{s}_{c}" for s, c, k in states], " " * 8)
-    lines += [f"    zi[{s}, {c}, {k}] = z{k}_{s}_{c}" for s, c, k in states]
-    # 0 * z is 0 for finite z and NaN otherwise.
-    lines.append("    return 0.0 * (" + " + ".join(f"z{k}_{s}_{c}" for s, c, k in states) + ") == 0.0")
-    return "\n".join(lines) + "\n"
+def channel_passes(channels: int) -> tuple[tuple[int, int, int], ...]:
+    """How the loops cover ``channels`` channels: (lanes, first, stop) per pass.
 
-
-def _array_layout_source(name: str, n_sections: int) -> str:
-    """Loop for any channel count, channel loop innermost.
-
-    State row ``2 * s + k`` of the local array ``z`` holds delay ``k`` of
-    section ``s`` for every channel.
+    Mono and stereo are one pass; otherwise groups of 4, then a pair and a
+    single channel for what is left: 8 -> (4, 0, 8); 7 -> (4, 0, 4),
+    (2, 4, 6), (1, 6, 7).
     """
-    lines = [f"def {name}(sos, x, y, zi):", *_coefficient_lines(n_sections)]
-    lines += [
-        "    frames, channels = x.shape",
-        f"    z = np.empty(({2 * n_sections}, channels))",
-        "    for c in range(channels):",
-        f"        for r in range({2 * n_sections}):",
-        "            z[r, c] = zi[r // 2, c, r % 2]",
-        "    for start in range(0, frames, FLUSH_EVERY):",
-        "        for n in range(start, min(start + FLUSH_EVERY, frames)):",
-        "            for c in range(channels):",
-        "                v = np.float64(x[n, c])",
-        *_section_lines(n_sections, "z[{s2}, c]", "z[{s2p1}, c]", " " * 16),
-        "                y[n, c] = v",
-        "        for c in range(channels):",
-        f"            for r in range({2 * n_sections}):",
-        *_flush_lines(["z[r, c]"], " " * 16),
-        "    finite = 0.0",
-        "    for c in range(channels):",
-        f"        for r in range({2 * n_sections}):",
-        "            zi[r // 2, c, r % 2] = z[r, c]",
-        "            finite += 0.0 * z[r, c]",
-        "    return finite == 0.0",
-    ]
+    if channels in (1, 2):
+        return ((channels, 0, channels),)
+    fours = channels - channels % 4
+    passes = [(4, 0, fours)] if fours else []
+    if channels - fours >= 2:
+        passes.append((2, fours, fours + 2))
+    if (channels - fours) % 2:
+        passes.append((1, channels - 1, channels))
+    return tuple(passes)
+
+
+def _sos_loop_name(n_sections: int, lanes: int, stage: str, round32: bool) -> str:
+    return f"_sos_loop_{n_sections}s_{lanes}lanes_{stage}{'_r32' if round32 else ''}"
+
+
+def _sos_loop_source(n_sections: int, lanes: int, stage: str, round32: bool = False) -> str:
+    """Source of ``_sos_loop_name(...)(sos, x, out, zi, c0, c1, pcm, dither_state)``.
+
+    Returns ``(finite, peak, clips)``: whether the final states of channels
+    [c0, c1) are finite, their largest |output| (before rounding to float32
+    and before the gain), and for stage "pcm" the number of clipped samples.
+    ``pcm`` is :func:`_pcm_params`'s array, ``dither_state``
+    :func:`seed_state`'s (both unused by stage "float").
+    """
+    lines = [f"def {_sos_loop_name(n_sections, lanes, stage, round32)}"
+             "(sos, x, out, zi, c0, c1, pcm, dither_state):",
+             *_coefficient_lines(n_sections),
+             "    frames, channels = x.shape",
+             "    xf = x.reshape(-1)",
+             "    of = out.reshape(-1)",
+             "    uch = np.uint64(channels)",
+             "    clips = 0",
+             "    buf = np.empty(FLUSH_EVERY * channels if PCM else 0)",
+             *[f"    pk{c} = 0.0" for c in range(lanes)],
+             "    for start in range(0, frames, FLUSH_EVERY):",
+             "        nb = min(start + FLUSH_EVERY, frames) - start",
+             "        g = c0",
+             *_group_lines(n_sections, lanes, stage, round32)]
+    if stage == "pcm":
+        lines += ["        n = nb * channels",
+                  "        k = dither_state[1] + np.uint64(start * channels)",
+                  "        clips += _quantize_span(buf[:n], pcm[0], pcm[1], pcm[2], pcm[3], pcm[4],",
+                  "                                dither_state[0], k, of[start * channels:][:n])[0]"]
+    lines += ["    peak = 0.0", *[f"    peak = pk{c} if pk{c} > peak else peak" for c in range(lanes)],
+              "    finite = 0.0",
+              "    for c in range(c0, c1):",
+              "        for s in range(zi.shape[0]):",
+              "            finite += 0.0 * (zi[s, c, 0] + zi[s, c, 1])",
+              "    return finite == 0.0, peak, clips"]
     return "\n".join(lines) + "\n"
 
 
-def _sos_loop_source(n_sections: int, layout: int) -> tuple[str, str]:
-    """Name and source of the loop for ``n_sections`` and ``layout`` (1, 2 or 0 = any)."""
-    if layout:
-        name = f"_sos_loop_{n_sections}s_{layout}ch"
-        return name, _scalar_layout_source(name, n_sections, layout)
-    name = f"_sos_loop_{n_sections}s_nch"
-    return name, _array_layout_source(name, n_sections)
+_SOS_LOOPS: dict[tuple[int, int, str, bool], _Kernel] = {}
+_LANE_CONSTANTS = {f"U{c}": np.uint64(c) for c in range(max(GROUP_LANES))}
 
 
-_SOS_LOOPS: dict[tuple[int, int], _Kernel] = {}
-
-
-def _sos_loop(n_sections: int, layout: int) -> _Kernel:
-    """The (lazily compiled) loop for ``n_sections`` sections and a channel layout."""
-    key = (n_sections, layout)
+def _sos_loop(n_sections: int, lanes: int, stage: str = "float", round32: bool = False) -> _Kernel:
+    """The (lazily compiled) loop for a cascade length, group width and output stage."""
+    key = (n_sections, lanes, stage, round32)
     if key in _SOS_LOOPS:
         return _SOS_LOOPS[key]
     with _COMPILE_LOCK:
         if key not in _SOS_LOOPS:
-            _SOS_LOOPS[key] = _Kernel(_build_sos_loop(n_sections, layout))
+            _SOS_LOOPS[key] = _Kernel(_build_sos_loop(*key), helpers=(_QUANTIZE,), slp=True)
     return _SOS_LOOPS[key]
 
 
-def _build_sos_loop(n_sections: int, layout: int) -> Callable:
-    """Generate and define the pure-Python loop for one cascade length and layout."""
-    name, source = _sos_loop_source(n_sections, layout)
-    namespace = {"np": np, "FLUSH_EVERY": FLUSH_EVERY, "FLUSH_BELOW": FLUSH_BELOW}
+_PLANS: dict[tuple[int, int, str, bool], tuple] = {}
+
+
+def _plan(n_sections: int, channels: int, stage: str, round32: bool) -> tuple:
+    """((dispatcher, c0, c1), ...): the compiled passes for one call, memoized."""
+    key = (n_sections, channels, stage, round32)
+    try:
+        return _PLANS[key]
+    except KeyError:
+        _PLANS[key] = tuple((_sos_loop(n_sections, lanes, stage, round32).compiled, c0, c1)
+                            for lanes, c0, c1 in channel_passes(channels))
+        return _PLANS[key]
+
+
+def _build_sos_loop(n_sections: int, lanes: int, stage: str, round32: bool) -> Callable:
+    """Generate and define the pure-Python loop for one cascade length, width and stage."""
+    namespace = {"np": np, "FLUSH_EVERY": FLUSH_EVERY, "FLUSH_BELOW": FLUSH_BELOW,
+                 "PCM": stage == "pcm", "_quantize_span": _quantize_span, **_LANE_CONSTANTS}
+    source = _sos_loop_source(n_sections, lanes, stage, round32)
     # Compiled under this file's name so numba's disk cache follows this file.
     exec(compile(source, __file__, "exec"), namespace)  # noqa: S102 - generated here
-    func = namespace[name]
+    func = namespace[_sos_loop_name(n_sections, lanes, stage, round32)]
     func.__module__ = __name__
     return func
+
+
+_NO_PCM = np.zeros(5)
+_NO_STATE = np.zeros(2, dtype=np.uint64)
 
 
 def sos_filter(
@@ -352,30 +571,90 @@ def sos_filter(
     return out
 
 
-def filter_unchecked(sos: np.ndarray, x: np.ndarray, zi: np.ndarray, out: np.ndarray) -> bool:
-    """:func:`sos_filter` without argument checks; True if the final state is finite.
+def filter_unchecked(
+    sos: np.ndarray, x: np.ndarray, zi: np.ndarray, out: np.ndarray
+) -> tuple[bool, float]:
+    """:func:`sos_filter` without argument checks.
 
-    A NaN or infinity anywhere in ``x`` leaves NaN in the state for good, so
-    a False return means the block held one (or the filter overflowed).
+    Returns
+    -------
+    finite : bool
+        Whether the final state is finite. A NaN or infinity anywhere in
+        ``x`` leaves NaN in the state for good, so False means the block
+        held one (or the filter overflowed).
+    peak : float
+        Largest magnitude of the output, as stored in ``out``.
     """
-    n_sections, channels = sos.shape[0], x.shape[1]
-    layout = channels if channels <= 2 else 0
-    if n_sections <= MAX_UNROLLED_SECTIONS:
-        return _sos_loop(n_sections, layout)(sos, x, out, zi)
-    finite = True
-    source = x
-    for first in range(0, n_sections, MAX_UNROLLED_SECTIONS):
-        last = min(first + MAX_UNROLLED_SECTIONS, n_sections)
-        # Intermediate runs stay in float64 so a split cascade is exact.
-        target = out if last == n_sections else _float64_buffer(x, out)
-        loop = _sos_loop(last - first, layout)
-        finite &= loop(sos[first:last], source, target, zi[first:last])
-        source = target
-    return finite
+    n = sos.shape[0]
+    if n > MAX_UNROLLED_SECTIONS:  # rare: runs of 4 sections, in float64, then one cast
+        y = _long_cascade(sos, x, zi)
+        out[...] = y
+        return _finite_state(zi), float(peak_abs(out))
+    finite, peak = _passes(_plan(n, x.shape[1], "float", False), sos, x, out, zi)
+    return finite, float(np.float32(peak)) if out.dtype == np.float32 else peak
 
 
-def _float64_buffer(x: np.ndarray, out: np.ndarray) -> np.ndarray:
-    return out if out.dtype == np.float64 else np.empty(x.shape, np.float64)
+def filter_quantize_unchecked(
+    sos: np.ndarray, x: np.ndarray, zi: np.ndarray, out: np.ndarray,
+    gain: float, bits: int, state: np.ndarray,
+) -> tuple[bool, int, float]:
+    """Filter ``x`` and quantize the result into ``out`` in one pass.
+
+    Equal, sample for sample, to :func:`sos_filter` into an array of
+    ``x``'s dtype followed by :func:`quantize_tpdf` with the same ``gain``,
+    ``bits`` and ``state``, without the intermediate array: the filter
+    output of each chunk of :data:`FLUSH_EVERY` frames stays in a small
+    buffer in the cache and is quantized right away. (Channel counts that
+    need several passes, see :func:`channel_passes`, take the two steps.)
+
+    Returns
+    -------
+    finite : bool
+        As :func:`filter_unchecked` (when False, ``out`` is undefined).
+    clips : int
+        Samples clamped at full scale.
+    peak : float
+        Largest magnitude of the filter output (as rounded to ``x``'s dtype),
+        before the gain: the quantizer's peak is ``peak * abs(gain)``.
+    """
+    params = _pcm_params(gain, bits)
+    long = sos.shape[0] > MAX_UNROLLED_SECTIONS
+    passes = () if long else _plan(sos.shape[0], x.shape[1], "pcm", x.dtype == np.float32)
+    if len(passes) != 1:
+        y = np.empty_like(x)
+        finite, peak = filter_unchecked(sos, x, zi, y)
+        clips = quantize_tpdf(y, gain, bits, state, out)[0]
+        return finite, clips, peak
+    loop, c0, c1 = passes[0]
+    finite, peak, clips = loop(sos, x, out, zi, c0, c1, params, state)
+    state[1] += np.uint64(x.size)
+    return finite, clips, float(np.float32(peak)) if x.dtype == np.float32 else peak
+
+
+def _passes(plan: tuple, sos: np.ndarray, x: np.ndarray, out: np.ndarray, zi: np.ndarray
+            ) -> tuple[bool, float]:
+    """Run the float passes of ``plan``; (all states finite, largest |output| in float64)."""
+    finite, peak = True, 0.0
+    for loop, c0, c1 in plan:
+        ok, p, _ = loop(sos, x, out, zi, c0, c1, _NO_PCM, _NO_STATE)
+        finite, peak = finite and ok, max(peak, p)
+    return finite, peak
+
+
+def _long_cascade(sos: np.ndarray, x: np.ndarray, zi: np.ndarray) -> np.ndarray:
+    """A cascade of more than MAX_UNROLLED_SECTIONS, run after run, in float64.
+
+    The intermediate results stay in float64, so the split cascade is exact.
+    """
+    y = np.array(x, dtype=np.float64)
+    for first in range(0, sos.shape[0], MAX_UNROLLED_SECTIONS):
+        last = min(first + MAX_UNROLLED_SECTIONS, sos.shape[0])
+        _passes(_plan(last - first, x.shape[1], "float", False), sos[first:last], y, y, zi[first:last])
+    return y
+
+
+def _finite_state(zi: np.ndarray) -> bool:
+    return bool(np.isfinite(zi).all())
 
 
 def _check_filter_args(sos: np.ndarray, x: np.ndarray, zi: np.ndarray) -> None:
@@ -392,81 +671,8 @@ def _check_filter_args(sos: np.ndarray, x: np.ndarray, zi: np.ndarray) -> None:
 
 
 # --------------------------------------------------------------------------
-# Dither generator and quantizer
+# Dither generator and quantizer: public wrappers
 # --------------------------------------------------------------------------
-
-_U64 = np.uint64
-_GOLDEN = _U64(0x9E3779B97F4A7C15)
-_MIX1 = _U64(0xBF58476D1CE4E5B9)
-_MIX2 = _U64(0x94D049BB133111EB)
-_SHIFT27, _SHIFT30, _SHIFT31, _SHIFT32 = _U64(27), _U64(30), _U64(31), _U64(32)
-_LOW32 = _U64(0xFFFFFFFF)
-_TWO_POW_M32 = 2.0**-32
-
-
-def _tpdf_draw(s):
-    """Advance splitmix64 state ``s``; return (new state, TPDF value in LSB).
-
-    The value is the sum of two uniforms in [-1/2, 1/2) made from the high
-    and low 32 bits of one 64-bit output. (Pure Python: uint64 arithmetic
-    wraps, and numpy may warn about overflow.)
-    """
-    s = s + _GOLDEN
-    z = (s ^ (s >> _SHIFT30)) * _MIX1
-    z = (z ^ (z >> _SHIFT27)) * _MIX2
-    z = z ^ (z >> _SHIFT31)
-    high = np.float64(z >> _SHIFT32) * _TWO_POW_M32 - 0.5
-    low = np.float64(z & _LOW32) * _TWO_POW_M32 - 0.5
-    return s, high + low
-
-
-def _tpdf_fill(state, out):
-    s = state[0]
-    for i in range(out.shape[0]):
-        s, out[i] = _tpdf_draw(s)
-    state[0] = s
-
-
-def _quantize_loop(y, scale, bits, state, out):
-    """Scale, dither, round, clamp and left-justify; see :func:`quantize_tpdf`."""
-    top = np.float64(2 ** (bits - 1))
-    hi, lo = top - 1.0, -top
-    shift = 32 - bits
-    dither = bits < 32
-    s = state[0]
-    clips = 0
-    nans = 0
-    peak = 0.0
-    for n in range(y.shape[0]):
-        for c in range(y.shape[1]):
-            v = np.float64(y[n, c]) * scale
-            if abs(v) > peak:
-                peak = abs(v)
-            if dither:
-                s, d = _tpdf_draw(s)
-                v += d
-            q = np.rint(v)
-            if q > hi:
-                q = hi
-                clips += 1
-            elif q < lo:
-                q = lo
-                clips += 1
-            elif q != q:
-                q = 0.0
-                nans += 1
-            out[n, c] = np.int32(np.int64(q) << shift)
-    state[0] = s
-    peak = peak / top
-    if nans:
-        peak = np.nan
-    return clips, peak
-
-
-_TPDF_DRAW = _Kernel(_tpdf_draw)
-_TPDF_FILL = _Kernel(_tpdf_fill, helpers=(_TPDF_DRAW,))
-_QUANTIZE = _Kernel(_quantize_loop, helpers=(_TPDF_DRAW,))
-_BITS = (8, 16, 24, 32)
 
 
 def seed_state(seed: int) -> np.ndarray:
@@ -479,18 +685,20 @@ def seed_state(seed: int) -> np.ndarray:
 
     Returns
     -------
-    ndarray of uint64, shape (1,)
-        Pass it to :func:`quantize_tpdf` (or :func:`tpdf_dither`) block after
-        block; it is advanced in place.
+    ndarray of uint64, shape (2,)
+        ``[seed, samples drawn so far]``. Pass it to :func:`quantize_tpdf`
+        (or :func:`tpdf_dither`) block after block; the count is advanced in
+        place.
     """
     if isinstance(seed, bool) or not isinstance(seed, int | np.integer):
         raise TypeError(f"seed must be an integer, got {seed!r}")
-    return np.array([int(seed) % 2**64], dtype=np.uint64)
+    return np.array([int(seed) % 2**64, 0], dtype=np.uint64)
 
 
-def _check_state(state: np.ndarray) -> None:
-    if not (isinstance(state, np.ndarray) and state.dtype == np.uint64 and state.shape == (1,)):
-        raise ValueError(f"state must be a uint64 array of shape (1,) from seed_state, got {state!r}")
+def check_state(state: np.ndarray) -> None:
+    """Raise ValueError unless ``state`` is a dither state made by :func:`seed_state`."""
+    if not (isinstance(state, np.ndarray) and state.dtype == np.uint64 and state.shape == (2,)):
+        raise ValueError(f"state must be a uint64 array of shape (2,) from seed_state, got {state!r}")
 
 
 def tpdf_dither(n: int, state: np.ndarray) -> np.ndarray:
@@ -499,9 +707,10 @@ def tpdf_dither(n: int, state: np.ndarray) -> np.ndarray:
     The same sequence :func:`quantize_tpdf` adds, sample by sample in
     frame-major order.
     """
-    _check_state(state)
+    check_state(state)
     out = np.empty(int(n), dtype=np.float64)
-    _TPDF_FILL(state, out)
+    _TPDF_FILL(state[0], state[1], out)
+    state[1] += np.uint64(out.size)
     return out
 
 
@@ -511,14 +720,15 @@ def quantize_tpdf(
     """Quantize float audio to left-justified integers with TPDF dither.
 
     Each sample ``v = y * gain * 2**(bits - 1)`` gets TPDF dither (two
-    independent uniform values in [-1/2, 1/2) LSB summed), is rounded to the
-    nearest integer (ties to even), clamped to ``[-2**(bits-1), 2**(bits-1) - 1]``
-    and stored as ``q << (32 - bits)``, the left-justified int32 form that
-    libsndfile (and soundfile) expect for 8/16/24-bit PCM given int32 data.
+    independent uniform values in [-1/2, 1/2] LSB summed; see the module
+    docstring for the generator), is rounded to the nearest integer (ties to
+    even), clamped to ``[-2**(bits-1), 2**(bits-1) - 1]`` and stored as
+    ``q << (32 - bits)``, the left-justified int32 form that libsndfile (and
+    soundfile) expect for 8/16/24-bit PCM given int32 data.
 
-    For ``bits=32`` no dither is added: it would be 2**-31 of full scale,
-    far below the noise of any analog transfer, and a float64 input carries
-    only 53 bits anyway.
+    For ``bits=32`` no dither is added (the sample count still advances): it
+    would be 2**-31 of full scale, far below the noise of any analog
+    transfer, and a float64 input carries only 53 bits anyway.
 
     Parameters
     ----------
@@ -528,9 +738,9 @@ def quantize_tpdf(
         Linear gain applied before quantization.
     bits : {8, 16, 24, 32}
         Target word length.
-    state : ndarray of uint64, shape (1,)
+    state : ndarray of uint64, shape (2,)
         Dither generator state from :func:`seed_state`; advanced in place so
-        consecutive blocks continue one sequence (one draw per sample, in
+        consecutive blocks continue one sequence (one value per sample, in
         frame-major order).
     out : ndarray of int32, shape (frames, channels)
         Receives the quantized samples.
@@ -553,15 +763,18 @@ def quantize_tpdf(
     >>> out[1, 0] == 32767 << 16  # clamped, left-justified
     np.True_
     """
-    if bits not in _BITS:
-        raise ValueError(f"bits must be one of {_BITS}, got {bits!r}")
-    _check_state(state)
+    params = _pcm_params(gain, bits)
+    check_state(state)
     if y.ndim != 2 or y.dtype not in (np.float32, np.float64):
         raise ValueError(f"y must be a float32/float64 (frames, channels) array, got {y.dtype}")
     if out.dtype != np.int32 or out.shape != y.shape:
         raise ValueError(f"out must be int32 of shape {y.shape}, got {out.dtype} {out.shape}")
-    scale = float(gain) * 2.0 ** (bits - 1)
-    clips, peak = _QUANTIZE(y, scale, int(bits), state, out)
+    flat = out.reshape(-1) if out.flags.c_contiguous else np.empty(out.size, np.int32)
+    clips, nans = _QUANTIZE(y.reshape(-1), *params, state[0], state[1], flat)
+    if not out.flags.c_contiguous:
+        out[...] = flat.reshape(out.shape)
+    state[1] += np.uint64(y.size)
+    peak = np.nan if nans else peak_abs(y) * abs(float(gain))
     return int(clips), float(peak)
 
 

@@ -140,6 +140,7 @@ class Equalizer:
             raise DspeqError(f"channels must be a positive integer, got {channels!r}")
         self._channels = int(channels)
         self._zi = np.zeros((self._sos.shape[0], self._channels, 2))
+        self._peak = 0.0
 
     @property
     def sos(self) -> np.ndarray:
@@ -159,6 +160,15 @@ class Equalizer:
     def reset(self) -> None:
         """Set the filter state to zero (as before the first block)."""
         self._zi[...] = 0.0
+
+    @property
+    def last_peak(self) -> float:
+        """Largest magnitude of the output of the last successful block (0.0 before any).
+
+        For :meth:`process_pcm` it is the filter output's, before the gain.
+        Measured by the filter loop itself, so it costs nothing extra.
+        """
+        return self._peak
 
     def process(self, block: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
         """Filter one block, continuing from the previous one.
@@ -190,14 +200,76 @@ class Equalizer:
             self._check_finite(frames)  # the input is about to be overwritten
         result = np.empty_like(frames) if target is None else target
         zi = self._zi.copy()
-        if not _kernels.filter_unchecked(self._coefficients, frames, zi, result):
+        finite, peak = _kernels.filter_unchecked(self._coefficients, frames, zi, result)
+        self._commit(frames, zi, finite, peak)
+        return result.reshape(np.shape(block)) if out is None else out
+
+    def process_pcm(
+        self, block: np.ndarray, gain: float, bits: int, dither_state: np.ndarray, out: np.ndarray
+    ) -> tuple[int, float]:
+        """Filter one block and quantize it to integer PCM in the same pass.
+
+        The samples equal ``quantize_tpdf(self.process(block), gain, bits,
+        dither_state, out)`` (:func:`dspeq._kernels.quantize_tpdf`) exactly,
+        but the filter output never goes to memory as a whole block: each
+        chunk is quantized while it is still in the cache.
+
+        Parameters
+        ----------
+        block : ndarray of float32 or float64
+            As for :meth:`process`.
+        gain : float
+            Linear gain before quantization.
+        bits : {8, 16, 24, 32}
+            Output word length.
+        dither_state : ndarray of uint64, shape (2,)
+            From :func:`dspeq._kernels.seed_state`; advanced in place.
+        out : ndarray of int32
+            C-contiguous, shape (frames, channels): left-justified samples.
+
+        Returns
+        -------
+        clips : int
+            Samples clamped at full scale.
+        peak : float
+            Largest ``abs(y * gain)`` before dither, in full-scale units.
+
+        Raises
+        ------
+        DspeqError
+            As :meth:`process`, or for a bad ``bits`` or ``out``; on error the
+            filter and dither states are left as they were.
+        """
+        frames = self._as_frames(block)
+        if bits not in _kernels.PCM_BITS:
+            raise DspeqError(f"bits must be one of {_kernels.PCM_BITS}, got {bits!r}")
+        try:
+            _kernels.check_state(dither_state)
+        except ValueError as exc:
+            raise DspeqError(str(exc)) from None
+        if not (isinstance(out, np.ndarray) and out.dtype == np.int32 and out.flags.c_contiguous
+                and out.flags.writeable and out.size == frames.size):
+            raise DspeqError(f"out must be a writable C-contiguous int32 array of {frames.shape[0]} "
+                             f"frames x {self._channels} channels, got {_describe(out)}")
+        drawn = int(dither_state[1])
+        zi = self._zi.copy()
+        finite, clips, peak = _kernels.filter_quantize_unchecked(
+            self._coefficients, frames, zi, out.reshape(frames.shape), gain, bits, dither_state)
+        if not finite:
+            dither_state[1] = drawn
+        self._commit(frames, zi, finite, peak)
+        return clips, peak * abs(float(gain))
+
+    def _commit(self, frames: np.ndarray, zi: np.ndarray, finite: bool, peak: float) -> None:
+        """Keep the new state ``zi`` of a finished block, or raise if it is not finite."""
+        if not finite:
             self._check_finite(frames)
             raise DspeqError(
                 f"filter state overflowed float64 on a finite block of shape "
                 f"{frames.shape!r}; the coefficients or the input level are out of range"
             )
         self._zi = zi
-        return result.reshape(np.shape(block)) if out is None else out
+        self._peak = peak
 
     def _as_frames(self, block: np.ndarray) -> np.ndarray:
         """Validate ``block`` and view it as a C-contiguous (frames, channels) array."""

@@ -48,8 +48,10 @@ def cascade(n_sections):
 # ---------------------------------------------------------------- SOS filter
 
 
-@pytest.mark.parametrize("n_sections", [1, 2, 3, 4, 5, 9])
-@pytest.mark.parametrize("channels", [1, 2, 3, 8])
+# Every loop width (1, 2, 4 lanes; 3 and 7 channels mix them), every unrolled
+# length 1-4 and split cascades (5 = 4 + 1, 9 = 4 + 4 + 1), each compiled once.
+@pytest.mark.parametrize(("n_sections", "channels"),
+                         [(1, 1), (2, 2), (3, 8), (4, 3), (4, 7), (5, 2), (9, 1), (2, 1)])
 def test_float64_bit_identical_to_sosfilt(n_sections, channels):
     rng = np.random.default_rng(n_sections * 10 + channels)
     sos = cascade(n_sections)
@@ -62,7 +64,7 @@ def test_float64_bit_identical_to_sosfilt(n_sections, channels):
     assert np.array_equal(zi, zf)
 
 
-@pytest.mark.parametrize(("n_sections", "channels"), [(1, 1), (2, 2), (2, 5), (5, 1)])
+@pytest.mark.parametrize(("n_sections", "channels"), [(1, 1), (2, 2), (5, 8)])
 def test_float32_computed_in_float64_rounded_once(n_sections, channels):
     rng = np.random.default_rng(7)
     sos = cascade(n_sections)
@@ -83,13 +85,17 @@ def test_out_may_be_input():
     assert np.array_equal(x, ref)
 
 
-def test_filter_unchecked_reports_nonfinite_state():
-    for channels in (1, 2, 4):
-        x = np.ones((100, channels))
+def test_filter_unchecked_reports_nonfinite_state_and_peak():
+    for channels in (1, 2):
+        x = np.random.default_rng(channels).standard_normal((2500, channels))
         zi = np.zeros((2, channels, 2))
-        assert K.filter_unchecked(RIAA_SOS, x, zi, np.empty_like(x))
+        y = np.empty_like(x)
+        finite, peak = K.filter_unchecked(RIAA_SOS, x, zi, y)
+        assert finite is True and peak == np.abs(y).max()  # numpy reference
+        y32 = np.empty(x.shape, np.float32)
+        assert K.filter_unchecked(RIAA_SOS, x.astype(np.float32), zi, y32)[1] == np.abs(y32).max()
         x[50, channels - 1] = np.inf
-        assert not K.filter_unchecked(RIAA_SOS, x, zi, np.empty_like(x))
+        assert K.filter_unchecked(RIAA_SOS, x, zi, np.empty_like(x))[0] is False
 
 
 def test_argument_checks():
@@ -102,25 +108,70 @@ def test_argument_checks():
         K.sos_filter(RIAA_SOS, x, np.zeros((2, 2, 2)), out=np.zeros((10, 2), np.float32))
 
 
-@pytest.mark.parametrize("layout", [1, 2, 0])
-@pytest.mark.parametrize("n_sections", [1, 2, 3, 4])
-def test_pure_python_loops_equal_compiled(layout, n_sections):
-    channels = layout or 3
-    rng = np.random.default_rng(layout + 5 * n_sections)
+@pytest.mark.parametrize(("lanes", "channels", "n_sections", "stage"),
+                         [(1, 1, 1, "float"), (4, 8, 3, "float"), (2, 2, 2, "pcm")])
+def test_pure_python_loops_equal_compiled(lanes, channels, n_sections, stage):
+    rng = np.random.default_rng(channels + 5 * n_sections)
     sos = cascade(n_sections)
     # 1100 frames cross one flush boundary; tiny initial states get flushed.
     x = rng.standard_normal((1100, channels))
     x[:, 0] = 0.0
     zi0 = rng.choice([1e-250, 0.3], size=(n_sections, channels, 2))
-    kernel = K._sos_loop(n_sections, layout)
+    kernel = K._sos_loop(n_sections, lanes, stage, round32=False)
     results = []
     for func in (kernel.py_func, kernel.compiled):
-        zi, y = zi0.copy(), np.empty_like(x)
-        finite = func(sos, x, y, zi)
-        results.append((y, zi, finite))
+        zi, y = zi0.copy(), np.empty(x.shape, np.int32 if stage == "pcm" else np.float64)
+        with np.errstate(over="ignore"):  # uint arithmetic of the dither wraps on purpose
+            finite, peak, clips = func(sos, x, y, zi, 0, channels, K._pcm_params(4.0, 16), K.seed_state(3))
+        results.append((y, zi, bool(finite), float(peak), int(clips)))
     assert np.array_equal(results[0][0], results[1][0])
     assert np.array_equal(results[0][1], results[1][1])
-    assert bool(results[0][2]) is True and bool(results[1][2]) is True
+    assert results[0][2:] == results[1][2:]
+    assert results[0][2] is True and (results[0][4] > 0) == (stage == "pcm")
+
+
+@pytest.mark.parametrize(("channels", "passes"), [
+    (1, ((1, 0, 1),)), (2, ((2, 0, 2),)), (3, ((2, 0, 2), (1, 2, 3))), (4, ((4, 0, 4),)),
+    (7, ((4, 0, 4), (2, 4, 6), (1, 6, 7))), (8, ((4, 0, 8),))])
+def test_channel_passes(channels, passes):
+    assert K.channel_passes(channels) == passes
+
+
+def test_slp_switch_is_restored_after_compiling():
+    from numba.core import config
+
+    before = config.SLP_VECTORIZE
+    kernel = K._Kernel(lambda a: a + 1.0, slp=True)
+    assert kernel(1.0) == 2.0
+    assert config.SLP_VECTORIZE == before
+
+
+# ---------------------------------------------------------------- fused filter + quantizer
+
+
+@pytest.mark.parametrize(("n_sections", "channels", "dtype"),
+                         [(2, 1, np.float32), (2, 2, np.float32), (2, 2, np.float64), (1, 8, np.float32),
+                          (5, 3, np.float64)])
+def test_fused_filter_quantize_equals_filter_then_quantize(n_sections, channels, dtype):
+    sos = cascade(n_sections)
+    x = (np.random.default_rng(channels).standard_normal((5000, channels)) * 0.4).astype(dtype)
+    zi0 = np.zeros((n_sections, channels, 2))
+    zi_ref = zi0.copy()
+    y = K.sos_filter(sos, x, zi_ref)
+    expected = np.empty(x.shape, np.int32)
+    # Start 777 samples before the dither's 2**32-sample key change, so it is crossed.
+    state = K.seed_state(3)
+    state[1] = 2**32 - 777
+    clips, peak = K.quantize_tpdf(y, 1.7, 24, state, expected)
+    got = np.empty(x.shape, np.int32)
+    fused_state = K.seed_state(3)
+    fused_state[1] = 2**32 - 777
+    zi = zi0.copy()
+    finite, fused_clips, filter_peak = K.filter_quantize_unchecked(sos, x, zi, got, 1.7, 24, fused_state)
+    assert finite and np.array_equal(got, expected)
+    assert fused_clips == clips > 0 and filter_peak * 1.7 == peak
+    assert np.array_equal(fused_state, state)
+    assert np.array_equal(zi, zi_ref)
 
 
 # ---------------------------------------------------------------- denormals
@@ -188,7 +239,35 @@ def test_seed_determinism_and_continuation():
     state = K.seed_state(1)
     b = np.concatenate([K.tpdf_dither(n, state) for n in (1, 10, 989)])
     assert np.array_equal(a, b)
-    assert state[0] != K.seed_state(1)[0]
+    assert state[1] == 1000 and state[0] == K.seed_state(1)[0]
+
+
+def test_dither_continues_across_the_key_change():
+    # Every 2**32 samples the generator takes a new key; a block that spans
+    # the change equals the two halves drawn separately.
+    start = K.seed_state(9)
+    start[1] = 2**32 - 300
+    whole = K.tpdf_dither(600, start.copy())
+    state = start.copy()
+    halves = np.concatenate([K.tpdf_dither(300, state), K.tpdf_dither(300, state)])
+    assert np.array_equal(whole, halves) and state[1] == 2**32 + 300
+    # Without the key change, sample 2**32 + j would repeat sample j.
+    assert not np.array_equal(whole[300:], K.tpdf_dither(300, K.seed_state(9)))
+
+
+def test_dither_values_are_uncorrelated():
+    # Neighbouring samples (consecutive frames, or channels of one frame)
+    # and the same index under two seeds: correlation within 5 standard
+    # errors of zero (1 / sqrt(n)).
+    n = 1 << 20
+    d = K.tpdf_dither(n, K.seed_state(77))
+    e = K.tpdf_dither(n, K.seed_state(78))
+    bound = 5 / np.sqrt(n)
+    for a, b in ((d[1:], d[:-1]), (d[2:], d[:-2]), (d, e)):
+        assert abs(np.corrcoef(a, b)[0, 1]) < bound
+    # The halves of one 32-bit hash are independent: the difference of the
+    # two uniforms (d = u1 + u2) would otherwise change the variance.
+    assert np.var(d) == pytest.approx(1 / 6, rel=0.01)
 
 
 def test_seed_state_checks():
@@ -202,7 +281,7 @@ def test_seed_state_checks():
 
 
 def _numpy_quantize(y, gain, bits, seed):
-    """Independent numpy version of quantize_tpdf (dither from tpdf_dither)."""
+    """Independent numpy version of quantize_tpdf (dither from tpdf_dither; none at 32 bits)."""
     v = y.astype(np.float64) * gain * 2.0 ** (bits - 1)
     if bits < 32:
         v = v + K.tpdf_dither(v.size, K.seed_state(seed)).reshape(v.shape)
@@ -224,8 +303,7 @@ def test_quantize_matches_numpy_reference(bits, dtype):
     assert np.array_equal(out, expected)
     assert clips == expected_clips > 0
     assert peak == np.max(np.abs(y.astype(np.float64) * 0.9))
-    if bits == 32:
-        assert state[0] == K.seed_state(99)[0]  # no dither drawn
+    assert state[1] == y.size
 
 
 def test_quantize_continuation_equals_one_call():
@@ -309,15 +387,17 @@ def test_quantize_nan_and_argument_checks():
 
 
 def test_pure_python_quantizer_equals_compiled():
-    y = np.random.default_rng(6).uniform(-1.1, 1.1, (40, 2))
+    y = np.random.default_rng(6).uniform(-1.1, 1.1, 80)
+    y[7] = np.nan
     results = []
     for func in (K._QUANTIZE.py_func, K._QUANTIZE.compiled):
-        state, out = K.seed_state(77), np.empty(y.shape, np.int32)
-        with np.errstate(over="ignore"):  # uint64 arithmetic wraps on purpose
-            clips, peak = func(y, 0.8 * 2.0**15, 16, state, out)
-        results.append((out, int(clips), float(peak), int(state[0])))
+        out = np.empty(y.shape, np.int32)
+        with np.errstate(over="ignore"):  # uint arithmetic wraps on purpose
+            # 40 samples before the key change at 2**32: both keys are used.
+            clips, nans = func(y, *K._pcm_params(1.0, 16), np.uint64(77), np.uint64(2**32 - 40), out)
+        results.append((out, int(clips), int(nans)))
     assert np.array_equal(results[0][0], results[1][0])
-    assert results[0][1:] == results[1][1:]
+    assert results[0][1:] == results[1][1:] and results[0][1] > 0 and results[0][2] == 1
 
 
 # ---------------------------------------------------------------- peak
