@@ -104,6 +104,7 @@ __all__ = [
     "check_state",
     "filter_quantize_unchecked",
     "filter_unchecked",
+    "pcm_bytes",
     "peak_abs",
     "quantize_tpdf",
     "seed_state",
@@ -290,34 +291,49 @@ def _tpdf_at(x, b):
     return np.float64(np.int32(_U32(x >> _S16) + _U32(x & _LOW16)) - _HALF_SPAN) * _STEP
 
 
-def _span_keys(seed, k):
-    """(low 32 bits of k, a0, b0, a1, b1, samples before the next epoch) for index ``k``."""
+def _span_split(seed, k, n):
+    """Split samples ``k .. k+n-1`` where the dither key changes (every 2**32 samples).
+
+    Returns (m, c0, b0, c1, b1): the first ``m`` samples use counter offset
+    ``c0`` (low 32 bits of ``k`` plus key ``a``) and key ``b0``, the rest
+    ``c1``, ``b1`` (counted from sample ``k + m``).
+    """
     epoch = k >> _SHIFT32
     a0, b0 = _epoch_keys(seed, epoch)
     a1, b1 = _epoch_keys(seed, epoch + _ONE64)
-    return _U32(k & _LOW32), a0, b0, a1, b1, np.int64(_EPOCH) - np.int64(k & _LOW32)
+    m = min(n, np.int64(_EPOCH) - np.int64(k & _LOW32))
+    return m, _U32(_U32(k & _LOW32) + a0), b0, a1, b1
 
 
 def _tpdf_fill(seed, k, out):
     """``out[j]`` = dither of sample ``k + j``."""
-    base, a0, b0, a1, b1, wrap = _span_keys(seed, k)
+    m, c0, b0, c1, b1 = _span_split(seed, k, out.shape[0])
+    _tpdf_run(c0, b0, out[:m])
+    _tpdf_run(c1, b1, out[m:])
+
+
+def _tpdf_run(c, b, out):
     for j in range(out.shape[0]):
-        late = j >= wrap
-        out[j] = _tpdf_at(_U32(_U32(j) + base + (a1 if late else a0)), b1 if late else b0)
+        out[j] = _tpdf_at(_U32(_U32(j) + c), b)
 
 
 def _quantize_span(v, scale, lo, hi, lsb, dither, seed, k, out):
     """Quantize ``v * scale`` (+ dither of samples ``k ...``) into ``out``; see quantize_tpdf.
 
-    Returns (clipped samples, NaN samples). Branch-free, so LLVM's loop
-    vectorizer handles it.
+    Returns (clipped samples, NaN samples).
     """
-    base, a0, b0, a1, b1, wrap = _span_keys(seed, k)
+    m, c0, b0, c1, b1 = _span_split(seed, k, v.shape[0])
+    clips0, nans0 = _quantize_run(v[:m], scale, lo, hi, lsb, dither, c0, b0, out[:m])
+    clips1, nans1 = _quantize_run(v[m:], scale, lo, hi, lsb, dither, c1, b1, out[m:])
+    return clips0 + clips1, nans0 + nans1
+
+
+def _quantize_run(v, scale, lo, hi, lsb, dither, c, b, out):
+    """The quantizer loop for one dither key; branch-free, so LLVM vectorizes it."""
     clips = 0
     nans = 0
     for j in range(v.shape[0]):
-        late = j >= wrap
-        d = _tpdf_at(_U32(_U32(j) + base + (a1 if late else a0)), b1 if late else b0)
+        d = _tpdf_at(_U32(_U32(j) + c), b)
         r = np.rint(np.float64(v[j]) * scale + d * dither)
         nan = r != r
         q = min(max(r, lo), hi)
@@ -329,9 +345,11 @@ def _quantize_span(v, scale, lo, hi, lsb, dither, seed, k, out):
 
 _EPOCH_KEYS = _Kernel(_epoch_keys)
 _TPDF_AT = _Kernel(_tpdf_at)
-_SPAN_KEYS = _Kernel(_span_keys, helpers=(_EPOCH_KEYS,))
-_TPDF_FILL = _Kernel(_tpdf_fill, helpers=(_SPAN_KEYS, _TPDF_AT))
-_QUANTIZE = _Kernel(_quantize_span, helpers=(_SPAN_KEYS, _TPDF_AT))
+_SPAN_SPLIT = _Kernel(_span_split, helpers=(_EPOCH_KEYS,))
+_TPDF_RUN = _Kernel(_tpdf_run, helpers=(_TPDF_AT,))
+_TPDF_FILL = _Kernel(_tpdf_fill, helpers=(_SPAN_SPLIT, _TPDF_RUN))
+_QUANTIZE_RUN = _Kernel(_quantize_run, helpers=(_TPDF_AT,))
+_QUANTIZE = _Kernel(_quantize_span, helpers=(_SPAN_SPLIT, _QUANTIZE_RUN))
 #: Word lengths the quantizer writes.
 PCM_BITS = (8, 16, 24, 32)
 
@@ -353,9 +371,10 @@ def _pcm_params(gain: float, bits: int) -> np.ndarray:
 # [c0, c1) in groups of ``lanes``: frames in chunks of FLUSH_EVERY, in each
 # chunk every group in turn, the states and coefficients of a group in
 # local scalars. Stage "float" stores the output in ``out`` (float32 or
-# float64); stage "pcm" (one pass over all channels) keeps the chunk's
-# output in a small float64 buffer and quantizes it (_quantize_span) into
-# ``out`` (int32). Both track the largest |output| per lane.
+# float64); stage "pcm" (one pass over all channels) scales, dithers,
+# rounds and clamps each output sample right there (the quantizer of
+# _quantize_run, inline) into ``out`` (int32): its work fills the cycles the
+# recursion leaves idle. Both track the largest |output| per lane.
 
 
 def _coefficient_lines(n_sections: int) -> list[str]:
@@ -389,8 +408,7 @@ def _group_lines(n_sections: int, lanes: int, stage: str, round32: bool) -> list
     states = [(s, c, k) for s in range(n_sections) for c in range(lanes) for k in (0, 1)]
     lines = [f"        while g + {lanes} <= c1:"]
     lines += [f"            z{k}_{s}_{c} = zi[{s}, g + {c}, {k}]" for s, c, k in states]
-    lines += ["            i = np.uint64(start * channels + g)", "            j = np.uint64(g)",
-              "            for _ in range(nb):"]
+    lines += ["            i = np.uint64(start * channels + g)", "            for _ in range(nb):"]
     ind = " " * 16
     lines += [f"{ind}v{c} = np.float64(xf[i + U{c}])" for c in range(lanes)]
     lines += _section_lines(n_sections, lanes, ind)
@@ -399,10 +417,16 @@ def _group_lines(n_sections: int, lanes: int, stage: str, round32: bool) -> list
     lines += [f"{ind}pk{c} = a{c} if a{c} > pk{c} else pk{c}" for c in range(lanes)]
     if stage == "float":
         lines += [f"{ind}of[i + U{c}] = v{c}" for c in range(lanes)]
-    else:
+    else:  # exactly _quantize_run on the value the "float" stage would have stored
         value = "np.float64(np.float32(v{c}))" if round32 else "v{c}"
-        lines += [f"{ind}buf[j + U{c}] = {value.format(c=c)}" for c in range(lanes)]
-    lines += [f"{ind}i += uch", f"{ind}j += uch"]
+        for template in (
+            "r{c} = np.rint(" + value + " * scale + _tpdf_at(_U32(_U32(i + U{c}) + counter), key) * dither)",
+            "q{c} = min(max(r{c}, lo), hi)",
+            "clips += q{c} != r{c}",
+            "of[i + U{c}] = np.int32(q{c} * lsb)",
+        ):
+            lines += [ind + template.format(c=c) for c in range(lanes)]
+    lines.append(f"{ind}i += uch")
     lines += [f"            zi[{s}, g + {c}, {k}] = z{k}_{s}_{c}" for s, c, k in states]
     # The flush works on the stored states (a loop compiles faster than one
     # statement per state); the next chunk loads them again.
@@ -438,33 +462,29 @@ def _sos_loop_name(n_sections: int, lanes: int, stage: str, round32: bool) -> st
 
 
 def _sos_loop_source(n_sections: int, lanes: int, stage: str, round32: bool = False) -> str:
-    """Source of ``_sos_loop_name(...)(sos, x, out, zi, c0, c1, pcm, dither_state)``.
+    """Source of ``_sos_loop_name(...)(sos, x, out, zi, c0, c1, pcm, keys)``.
 
     Returns ``(finite, peak, clips)``: whether the final states of channels
     [c0, c1) are finite, their largest |output| (before rounding to float32
     and before the gain), and for stage "pcm" the number of clipped samples.
-    ``pcm`` is :func:`_pcm_params`'s array, ``dither_state``
-    :func:`seed_state`'s (both unused by stage "float").
+    ``pcm`` is :func:`_pcm_params`'s array, ``keys`` the block's dither keys
+    from :func:`_block_keys` (both unused by stage "float").
     """
     lines = [f"def {_sos_loop_name(n_sections, lanes, stage, round32)}"
-             "(sos, x, out, zi, c0, c1, pcm, dither_state):",
+             "(sos, x, out, zi, c0, c1, pcm, keys):",
              *_coefficient_lines(n_sections),
              "    frames, channels = x.shape",
              "    xf = x.reshape(-1)",
              "    of = out.reshape(-1)",
              "    uch = np.uint64(channels)",
              "    clips = 0",
-             "    buf = np.empty(FLUSH_EVERY * channels if PCM else 0)",
+             "    scale, lo, hi, lsb, dither = pcm[0], pcm[1], pcm[2], pcm[3], pcm[4]",
+             "    counter, key = keys[0], keys[1]",
              *[f"    pk{c} = 0.0" for c in range(lanes)],
              "    for start in range(0, frames, FLUSH_EVERY):",
              "        nb = min(start + FLUSH_EVERY, frames) - start",
              "        g = c0",
              *_group_lines(n_sections, lanes, stage, round32)]
-    if stage == "pcm":
-        lines += ["        n = nb * channels",
-                  "        k = dither_state[1] + np.uint64(start * channels)",
-                  "        clips += _quantize_span(buf[:n], pcm[0], pcm[1], pcm[2], pcm[3], pcm[4],",
-                  "                                dither_state[0], k, of[start * channels:][:n])[0]"]
     lines += ["    peak = 0.0", *[f"    peak = pk{c} if pk{c} > peak else peak" for c in range(lanes)],
               "    finite = 0.0",
               "    for c in range(c0, c1):",
@@ -485,7 +505,7 @@ def _sos_loop(n_sections: int, lanes: int, stage: str = "float", round32: bool =
         return _SOS_LOOPS[key]
     with _COMPILE_LOCK:
         if key not in _SOS_LOOPS:
-            _SOS_LOOPS[key] = _Kernel(_build_sos_loop(*key), helpers=(_QUANTIZE,), slp=True)
+            _SOS_LOOPS[key] = _Kernel(_build_sos_loop(*key), helpers=(_TPDF_AT,), slp=True)
     return _SOS_LOOPS[key]
 
 
@@ -506,7 +526,7 @@ def _plan(n_sections: int, channels: int, stage: str, round32: bool) -> tuple:
 def _build_sos_loop(n_sections: int, lanes: int, stage: str, round32: bool) -> Callable:
     """Generate and define the pure-Python loop for one cascade length, width and stage."""
     namespace = {"np": np, "FLUSH_EVERY": FLUSH_EVERY, "FLUSH_BELOW": FLUSH_BELOW,
-                 "PCM": stage == "pcm", "_quantize_span": _quantize_span, **_LANE_CONSTANTS}
+                 "_U32": _U32, "_tpdf_at": _tpdf_at, **_LANE_CONSTANTS}
     source = _sos_loop_source(n_sections, lanes, stage, round32)
     # Compiled under this file's name so numba's disk cache follows this file.
     exec(compile(source, __file__, "exec"), namespace)  # noqa: S102 - generated here
@@ -516,7 +536,13 @@ def _build_sos_loop(n_sections: int, lanes: int, stage: str, round32: bool) -> C
 
 
 _NO_PCM = np.zeros(5)
-_NO_STATE = np.zeros(2, dtype=np.uint64)
+_NO_KEYS = np.zeros(2, dtype=np.uint32)
+
+
+def _block_keys(seed: np.uint64, k: np.uint64) -> np.ndarray:
+    """[counter offset, key b] of the dither for samples from ``k`` on (until the next 2**32)."""
+    _, counter, key, _, _ = _SPAN_SPLIT(seed, k, 0)
+    return np.array([counter, key], dtype=np.uint32)
 
 
 def sos_filter(
@@ -590,7 +616,12 @@ def filter_unchecked(
         y = _long_cascade(sos, x, zi)
         out[...] = y
         return _finite_state(zi), float(peak_abs(out))
-    finite, peak = _passes(_plan(n, x.shape[1], "float", False), sos, x, out, zi)
+    plan = _plan(n, x.shape[1], "float", False)
+    if len(plan) == 1:  # mono, stereo, multiples of 4 channels: straight to the loop
+        loop, c0, c1 = plan[0]
+        finite, peak, _ = loop(sos, x, out, zi, c0, c1, _NO_PCM, _NO_KEYS)
+    else:
+        finite, peak = _passes(plan, sos, x, out, zi)
     return finite, float(np.float32(peak)) if out.dtype == np.float32 else peak
 
 
@@ -621,14 +652,36 @@ def filter_quantize_unchecked(
     long = sos.shape[0] > MAX_UNROLLED_SECTIONS
     passes = () if long else _plan(sos.shape[0], x.shape[1], "pcm", x.dtype == np.float32)
     if len(passes) != 1:
-        y = np.empty_like(x)
-        finite, peak = filter_unchecked(sos, x, zi, y)
-        clips = quantize_tpdf(y, gain, bits, state, out)[0]
-        return finite, clips, peak
+        return _filter_then_quantize(sos, x, zi, out, gain, bits, state)
+    # The block's dither keys hold until sample 2**32 * (k // 2**32 + 1); a
+    # block that reaches past it is split there (the frame across it in two steps).
+    k, channels = int(state[1]), x.shape[1]
+    cut = (_EPOCH - k % _EPOCH) // channels
+    if cut < x.shape[0]:
+        pieces = ((0, cut, True), (cut, cut + 1, False), (cut + 1, x.shape[0], True))
+        return _pieces(sos, x, zi, out, gain, bits, state, pieces)
     loop, c0, c1 = passes[0]
-    finite, peak, clips = loop(sos, x, out, zi, c0, c1, params, state)
+    finite, peak, clips = loop(sos, x, out, zi, c0, c1, params, _block_keys(state[0], state[1]))
     state[1] += np.uint64(x.size)
     return finite, clips, float(np.float32(peak)) if x.dtype == np.float32 else peak
+
+
+def _filter_then_quantize(sos, x, zi, out, gain, bits, state) -> tuple[bool, int, float]:
+    """:func:`filter_quantize_unchecked` in two steps, through a whole-block array."""
+    y = np.empty_like(x)
+    finite, peak = filter_unchecked(sos, x, zi, y)
+    clips = quantize_tpdf(y, gain, bits, state, out)[0]
+    return finite, clips, peak
+
+
+def _pieces(sos, x, zi, out, gain, bits, state, pieces) -> tuple[bool, int, float]:
+    """:func:`filter_quantize_unchecked` frame range by frame range: (start, stop, fused)."""
+    finite, clips, peak = True, 0, 0.0
+    for start, stop, fused in pieces:
+        part = filter_quantize_unchecked if fused else _filter_then_quantize
+        ok, c, p = part(sos, x[start:stop], zi, out[start:stop], gain, bits, state)
+        finite, clips, peak = finite and ok, clips + c, max(peak, p)
+    return finite, clips, peak
 
 
 def _passes(plan: tuple, sos: np.ndarray, x: np.ndarray, out: np.ndarray, zi: np.ndarray
@@ -636,7 +689,7 @@ def _passes(plan: tuple, sos: np.ndarray, x: np.ndarray, out: np.ndarray, zi: np
     """Run the float passes of ``plan``; (all states finite, largest |output| in float64)."""
     finite, peak = True, 0.0
     for loop, c0, c1 in plan:
-        ok, p, _ = loop(sos, x, out, zi, c0, c1, _NO_PCM, _NO_STATE)
+        ok, p, _ = loop(sos, x, out, zi, c0, c1, _NO_PCM, _NO_KEYS)
         finite, peak = finite and ok, max(peak, p)
     return finite, peak
 
@@ -776,6 +829,50 @@ def quantize_tpdf(
     state[1] += np.uint64(y.size)
     peak = np.nan if nans else peak_abs(y) * abs(float(gain))
     return int(clips), float(peak)
+
+
+def _pcm24_loop(x, out):
+    """``out`` = the three upper bytes of each int32 of ``x``, little-endian."""
+    for i in range(x.shape[0]):
+        v = x[i]
+        out[3 * i] = np.uint8((v >> 8) & 0xFF)
+        out[3 * i + 1] = np.uint8((v >> 16) & 0xFF)
+        out[3 * i + 2] = np.uint8((v >> 24) & 0xFF)
+
+
+_PCM24 = _Kernel(_pcm24_loop)
+
+
+def pcm_bytes(x: np.ndarray, bits: int) -> np.ndarray:
+    """The samples of left-justified int32 PCM as signed little-endian ``bits``-bit bytes.
+
+    What FLAC's STREAMINFO MD5 covers: interleaved samples, each as a
+    signed integer of the word length, little-endian.
+
+    Parameters
+    ----------
+    x : ndarray of int32
+        Samples as :func:`quantize_tpdf` writes them (``q << (32 - bits)``).
+    bits : {8, 16, 24, 32}
+
+    Returns
+    -------
+    ndarray of uint8, shape (x.size * bits // 8,)
+
+    Examples
+    --------
+    >>> pcm_bytes(np.array([[-2 << 8, 0x123456 << 8]], np.int32), 24).tolist()
+    [254, 255, 255, 86, 52, 18]
+    """
+    if bits not in PCM_BITS or x.dtype != np.int32:
+        raise ValueError(f"pcm_bytes needs int32 samples and bits in {PCM_BITS}, got {x.dtype}, {bits!r}")
+    flat = np.ascontiguousarray(x).reshape(-1)
+    if bits == 24:
+        out = np.empty(flat.size * 3, np.uint8)
+        _PCM24(flat, out)
+        return out
+    narrow = {8: np.int8, 16: np.dtype("<i2"), 32: np.dtype("<i4")}[bits]
+    return (flat >> (32 - bits)).astype(narrow).view(np.uint8)
 
 
 # --------------------------------------------------------------------------

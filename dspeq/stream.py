@@ -281,6 +281,8 @@ class Equalizer:
                 f"got dtype {str(block.dtype)!r}; "
                 "convert integer PCM to float first (full scale = 1.0)"
             )
+        if block.ndim == 2 and block.shape[1] == self._channels and block.flags.c_contiguous:
+            return block  # the common case, checked first
         if block.ndim == 1:
             if self._channels != 1:
                 raise DspeqError(
@@ -303,14 +305,14 @@ class Equalizer:
             not isinstance(out, np.ndarray)
             or out.shape != block.shape
             or out.dtype != block.dtype
-            or not out.flags.c_contiguous
-            or not out.flags.writeable
+            or not (flags := out.flags).c_contiguous
+            or not flags.writeable
         ):
             raise DspeqError(
                 f"out must be a writable C-contiguous {block.dtype.name} array of shape "
                 f"{block.shape!r}, got {_describe(out)}"
             )
-        return out.reshape(frames.shape)
+        return out if out.ndim == 2 else out.reshape(frames.shape)
 
     @staticmethod
     def _check_finite(frames: np.ndarray) -> None:

@@ -482,3 +482,19 @@ def test_fallback_cache_dir_refuses_a_planted_path(tmp_path, monkeypatch):
     assert path.name.startswith("dspeq-numba-cache-") and path != elsewhere
     assert path.stat().st_mode & 0o077 == 0
     assert os.environ["NUMBA_CACHE_DIR"] == str(path)
+
+
+# ---------------------------------------------------------------- sample bytes
+
+
+@pytest.mark.parametrize("bits", [8, 16, 24, 32])
+def test_pcm_bytes_are_signed_little_endian_words(bits):
+    # FLAC format, STREAMINFO: the MD5 covers the samples as signed
+    # little-endian integers of the word length, interleaved.
+    q = np.random.default_rng(bits).integers(-(2 ** (bits - 1)), 2 ** (bits - 1), (500, 2))
+    q[0] = [-(2 ** (bits - 1)), 2 ** (bits - 1) - 1]
+    x = (q << (32 - bits)).astype(np.int32)
+    expected = b"".join(int(v).to_bytes(bits // 8, "little", signed=True) for v in q.ravel())
+    assert K.pcm_bytes(x, bits).tobytes() == expected
+    with pytest.raises(ValueError, match="pcm_bytes needs int32"):
+        K.pcm_bytes(x.astype(np.int64), bits)

@@ -209,3 +209,44 @@ def test_long_cascade_is_split_exactly():
     eq = Equalizer(sos, 3)
     y = np.concatenate([eq.process(x[:999]), eq.process(x[999:])])
     assert np.array_equal(y, signal.sosfilt(sos, x, axis=0))
+
+
+# ---------------------------------------------------------------- filter + quantize in one pass
+
+
+def test_process_pcm_equals_process_then_quantize():
+    from dspeq import _kernels
+
+    sos = signal.butter(4, 0.1, output="sos")
+    x = (np.random.default_rng(5).standard_normal((3000, 2)) * 0.5).astype(np.float32)
+    a, b = Equalizer(sos, 2), Equalizer(sos, 2)
+    sa, sb = _kernels.seed_state(11), _kernels.seed_state(11)
+    for lo, hi in ((0, 700), (700, 3000)):
+        got = np.empty((hi - lo, 2), np.int32)
+        clips, peak = a.process_pcm(x[lo:hi], 1.5, 16, sa, got)
+        y = b.process(x[lo:hi])
+        want = np.empty_like(got)
+        assert (clips, peak) == _kernels.quantize_tpdf(y, 1.5, 16, sb, want)
+        assert np.array_equal(got, want)
+        assert a.last_peak == np.abs(y).max() == b.last_peak  # numpy reference
+    assert np.array_equal(a.state, b.state) and np.array_equal(sa, sb)
+
+
+def test_process_pcm_errors_leave_both_states():
+    from dspeq import _kernels
+
+    eq = Equalizer(LOWPASS, 2)
+    eq.process_pcm(np.ones((10, 2)), 1.0, 24, _kernels.seed_state(0), np.empty((10, 2), np.int32))
+    before, state = eq.state, _kernels.seed_state(1)
+    x = np.ones((50, 2))
+    x[20, 1] = np.nan
+    with pytest.raises(DspeqError, match=r"1 NaN or infinite sample\(s\); first at .* \(20, 1\)"):
+        eq.process_pcm(x, 1.0, 24, state, np.empty((50, 2), np.int32))
+    assert np.array_equal(eq.state, before) and state[1] == 0
+    good = np.ones((50, 2))
+    with pytest.raises(DspeqError, match="bits must be one of"):
+        eq.process_pcm(good, 1.0, 12, state, np.empty((50, 2), np.int32))
+    with pytest.raises(DspeqError, match="out must be a writable C-contiguous int32"):
+        eq.process_pcm(good, 1.0, 16, state, np.empty((50, 2), np.int16))
+    with pytest.raises(DspeqError, match="state must be a uint64 array"):
+        eq.process_pcm(good, 1.0, 16, np.zeros(1, np.uint64), np.empty((50, 2), np.int32))

@@ -10,14 +10,21 @@
   temporary file beside the output, so the input is decoded only once.
 * :class:`Sink` writes to a temporary name in the output folder, quantizes
   integer output itself with seeded TPDF dither (via
-  :func:`dspeq._kernels.quantize_tpdf`, counting clipped samples), keeps an
-  MD5 of the samples as written, and on :meth:`Sink.commit` adds the
-  provenance metadata and renames the file to its final name.
+  :func:`dspeq._kernels.quantize_tpdf`, counting clipped samples, or
+  :meth:`Quantizer.filtered`, which filters and quantizes in one kernel
+  pass), keeps an MD5 of the samples as written, and on
+  :meth:`Sink.commit` adds the provenance metadata and renames the file to
+  its final name.
+* :class:`FileDigest` computes a file's SHA-256 in a background thread
+  (hashlib and file reads release the GIL), so that hashing an original
+  overlaps with decoding it.
 
 The sample MD5 follows FLAC's STREAMINFO convention: interleaved samples,
 signed little-endian integers of the output word length (8-bit output is
 hashed as signed), or the IEEE float bytes for float output.  For FLAC
-output it therefore equals the MD5 that the FLAC encoder stores.
+output the encoder computes exactly this MD5 while it encodes and stores it
+in STREAMINFO, so the Sink reads it from there instead of hashing the
+samples a second time (a test checks it against the decoded samples).
 
 soundfile is imported inside the functions that need it.
 """
@@ -28,6 +35,7 @@ import hashlib
 import os
 import secrets
 import struct
+import threading
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -39,7 +47,7 @@ from . import bwf
 
 __all__ = [
     "AUDIO_EXTENSIONS", "OUTPUT_FORMATS", "SUBTYPES", "TEMP_SUFFIX", "OutputSpec", "Source", "Sink",
-    "Spool", "Quantizer", "resolve_output", "output_suffix", "sha256_file", "declared_frames",
+    "Spool", "Quantizer", "resolve_output", "output_suffix", "sha256_file", "FileDigest", "declared_frames",
     "remove_stale_temps", "temp_path", "RF64_THRESHOLD",
 ]
 
@@ -69,15 +77,56 @@ _HASH_CHUNK = 1 << 20
 
 def sha256_file(path: str | os.PathLike) -> tuple[str, int]:
     """SHA-256 (hex) and size in bytes of a file, read in 1 MiB chunks."""
+    with open(path, "rb", buffering=0) as f:
+        return _sha256_of(f)
+
+
+def _sha256_of(f) -> tuple[str, int]:
     h = hashlib.sha256()
     size = 0
     buf = bytearray(_HASH_CHUNK)
     view = memoryview(buf)
-    with open(path, "rb", buffering=0) as f:
-        while n := f.readinto(buf):
-            h.update(view[:n])
-            size += n
+    while n := f.readinto(buf):
+        h.update(view[:n])
+        size += n
     return h.hexdigest(), size
+
+
+class FileDigest:
+    """:func:`sha256_file` of ``path``, computed in a background thread.
+
+    The file is opened at once (so a missing or unreadable file raises
+    OSError here, as :func:`sha256_file` would) and read and hashed in a
+    thread; :meth:`result` waits for it. Started before the file is decoded,
+    the hashing costs no wall time on a machine with a spare core, and on a
+    busy one what the synchronous call would.
+    """
+
+    def __init__(self, path: str | os.PathLike):
+        self._value: tuple[str, int] | None = None
+        self._error: BaseException | None = None
+        f = open(path, "rb", buffering=0)  # noqa: SIM115 - closed by the thread
+        self._thread = threading.Thread(target=self._run, args=(f,), name="dspeq-sha256", daemon=True)
+        self._thread.start()
+
+    def _run(self, f) -> None:
+        try:
+            with f:
+                self._value = _sha256_of(f)
+        except BaseException as exc:  # noqa: BLE001 - re-raised in result()
+            self._error = exc
+
+    def result(self) -> tuple[str, int]:
+        """(SHA-256 hex, size in bytes); raises what hashing raised (e.g. OSError)."""
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        return self._value
+
+    def hex_or_none(self) -> str | None:
+        """The SHA-256, or None if hashing failed."""
+        self._thread.join()
+        return None if self._value is None else self._value[0]
 
 
 # ----------------------------------------------------------------------------- output format
@@ -438,21 +487,58 @@ class Quantizer:
 
     def __call__(self, y: np.ndarray) -> np.ndarray:
         """The int32 (left-justified) samples of block ``y``; counts clips and peak."""
-        if self._out.shape != y.shape:
-            self._out = np.empty(y.shape, dtype=np.int32)
-        clips, peak = self._kernels.quantize_tpdf(y, self.gain, self.bits, self._state, self._out)
+        out = self._buffer(y.shape)
+        clips, peak = self._kernels.quantize_tpdf(y, self.gain, self.bits, self._state, out)
+        return self._count(out, clips, peak)
+
+    def filtered(self, eq, x: np.ndarray) -> np.ndarray:
+        """Block ``x`` through Equalizer ``eq`` and quantized, in one kernel pass.
+
+        The same samples as ``self(eq.process(x))``; raises what
+        :meth:`dspeq.stream.Equalizer.process_pcm` raises.
+        """
+        out = self._buffer(x.shape)
+        clips, peak = eq.process_pcm(x, self.gain, self.bits, self._state, out)
+        return self._count(out, clips, peak)
+
+    def _buffer(self, shape: tuple[int, ...]) -> np.ndarray:
+        if self._out.shape != shape:
+            self._out = np.empty(shape, dtype=np.int32)
+        return self._out
+
+    def _count(self, out: np.ndarray, clips: int, peak: float) -> np.ndarray:
         self.clips += clips
         self.peak = max(self.peak, peak)
-        return self._out
+        return out
 
 
 def _sample_bytes(block: np.ndarray, bits: int | None) -> memoryview:
     """The bytes hashed for the sample MD5 (FLAC STREAMINFO convention)."""
-    if bits is None or bits == 32:
+    if bits is None:
         return memoryview(np.ascontiguousarray(block)).cast("B")
-    width = bits // 8
-    raw = block.view(np.uint8).reshape(-1, 4)[:, 4 - width:]
-    return memoryview(np.ascontiguousarray(raw)).cast("B")
+    from .._kernels import pcm_bytes
+
+    return memoryview(pcm_bytes(block, bits))
+
+
+def _streaminfo_md5(path: str | os.PathLike) -> str | None:
+    """The audio MD5 a FLAC encoder stored in STREAMINFO (None if it left it empty)."""
+    with open(path, "rb") as f:
+        head = f.read(42)
+    # "fLaC", a 4-byte block header, then STREAMINFO (always first) with the MD5 in its last 16 bytes.
+    digest = head[26:42] if head[:4] == b"fLaC" and head[4] & 0x7F == 0 else b""
+    return digest.hex() if len(digest) == 16 and any(digest) else None
+
+
+def _decoded_md5(path: str | os.PathLike, bits: int) -> str:
+    """The sample MD5 of a finished PCM file, by decoding it."""
+    import soundfile as sf
+
+    h = hashlib.md5()
+    with sf.SoundFile(path) as f:
+        for block in f.blocks(65536, dtype="int32", always_2d=True):
+            h.update(_sample_bytes(block, bits))
+    return h.hexdigest()
 
 
 def temp_path(final_path: Path, kind: str = "") -> Path:
@@ -505,7 +591,8 @@ class Sink:
         self.flac_tags = flac_tags or []
         self.temp_path = temp_path(self.final_path)
         self.peak = 0.0
-        self._md5 = hashlib.md5()
+        # FLAC's encoder computes the sample MD5 itself (see the module docstring).
+        self._md5 = None if spec.container == "flac" else hashlib.md5()
         self._float_dtype = np.float64 if spec.subtype == "float64" else np.float32
         with open(self.temp_path, "xb"):    # a clear OSError (permissions, read-only) before libsndfile
             pass
@@ -527,12 +614,24 @@ class Sink:
         else:
             data = np.multiply(y, self.gain, dtype=self._float_dtype)
             self.peak = max(self.peak, peak_abs(data))
-        self._md5.update(_sample_bytes(data, self.spec.bits))
+        self.write_pcm(data)
+
+    def write_pcm(self, data: np.ndarray) -> None:
+        """Write samples that are already in the output's form (e.g. from :meth:`Quantizer.filtered`)."""
+        if self._md5 is not None:
+            self._md5.update(_sample_bytes(data, self.spec.bits))
         self._sf.write(data)
 
     @property
     def audio_md5(self) -> str:
-        return self._md5.hexdigest()
+        """MD5 of the samples written; for FLAC output this finishes the encoding.
+
+        After it, FLAC output takes no more samples (:meth:`commit` follows).
+        """
+        if self._md5 is not None:
+            return self._md5.hexdigest()
+        self._sf.close()
+        return _streaminfo_md5(self.temp_path) or _decoded_md5(self.temp_path, self.spec.bits)
 
     def commit(self, bext: bwf.Bext | None) -> tuple[str, int]:
         """Close, add provenance, rename to the final name; return (SHA-256, bytes).

@@ -38,7 +38,7 @@ import numpy as np
 
 from .._errors import AudioFileError, DspeqError, JobError
 from . import bwf, speed
-from .audio import Quantizer, Sink, Source, Spool, remove_stale_temps, resolve_output, sha256_file, temp_path
+from .audio import FileDigest, Quantizer, Sink, Source, Spool, remove_stale_temps, resolve_output, temp_path
 from .job import Job, Plan, Task, plan, real_path, within
 from .manifest import RECORD_VERSION, Manifest, settings_digest
 
@@ -207,14 +207,18 @@ class _Render:
     rate_change: Any = None
     counted: Any = None
 
-    def filtered(self, eq) -> Iterator[np.ndarray]:
-        """The source, block by block, through the equalizer (output buffer reused)."""
+    def filtered(self, eq, quant: Quantizer | None = None) -> Iterator[np.ndarray]:
+        """The source, block by block, through the equalizer (output buffer reused).
+
+        With ``quant``, the blocks are quantized in the same kernel pass (int32 PCM).
+        """
         n = self.task.block_frames
         out = np.empty((n, self.source.channels), dtype=self.dtype)
         start = 0
         for block in self.source.blocks(n, self.dtype):
             try:
-                y = eq.process(block, out=out[:len(block)])
+                y = (quant.filtered(eq, block) if quant is not None
+                     else eq.process(block, out=out[:len(block)]))
             except DspeqError as exc:
                 raise AudioFileError(f"input holds samples that are not finite, in frames "
                                      f"{start}–{start + len(block) - 1} ({exc}): "
@@ -253,16 +257,24 @@ def _version() -> str:
     return __version__
 
 
-def _write(r: _Render, blocks: Iterable[np.ndarray], final: Path) -> dict[str, Any]:
-    """Write ``blocks`` at the chosen gain; return the output part of the record."""
+def _write(r: _Render, blocks: Iterable[np.ndarray], final: Path, fuse_eq=None) -> dict[str, Any]:
+    """Write ``blocks`` at the chosen gain; return the output part of the record.
+
+    With ``fuse_eq`` (integer output), the source is filtered and quantized in
+    one kernel pass instead (``blocks`` is not used).
+    """
     history, description, tags = _provenance(r)
     gain = 10.0 ** (r.gain_db / 20.0)
     quant = None if r.spec.is_float else Quantizer(r.spec.bits, gain, r.task.seed)
     rate = r.rate_change.output_rate if r.rate_change else r.source.rate
     sink = Sink(final, r.spec, rate, r.source.channels, quant, gain, tags)
     try:
-        for y in blocks:
-            sink.write(y)
+        if fuse_eq is not None:
+            for pcm in r.filtered(fuse_eq, quant):
+                sink.write_pcm(pcm)
+        else:
+            for y in blocks:
+                sink.write(y)
         md5 = sink.audio_md5
         bext = bwf.Bext(description=description, originator="dspeq", originator_reference=md5,
                         origination_date=r.started.strftime("%Y-%m-%d"),
@@ -294,7 +306,8 @@ def _render(r: _Render, final: Path) -> dict[str, Any]:
     if s.gain_db is not None or r.spec.is_float:
         r.mode = "fixed" if s.gain_db is not None else "float"
         r.gain_db = s.gain_db or 0.0
-        out = _write(r, _stream(r, eq), final)
+        fuse = not r.spec.is_float and (r.rate_change is None or r.rate_change.resampler is None)
+        out = _write(r, _stream(r, eq), final, fuse_eq=eq if fuse else None)
         r.filtered_peak = 10 ** ((out["output_peak_dbfs"] or -math.inf) / 20) / 10 ** (r.gain_db / 20)
         return out
     from .._kernels import peak_abs
@@ -303,8 +316,8 @@ def _render(r: _Render, final: Path) -> dict[str, Any]:
     frames = r.rate_change.frames_out(r.source.frames) if r.rate_change else r.source.frames
     spool = Spool(frames, r.source.channels, r.dtype, r.task.spool_bytes, temp_path(final, ".spool"))
     try:
-        for y in _stream(r, eq):
-            r.filtered_peak = max(r.filtered_peak, peak_abs(y))
+        for y in _stream(r, eq):   # the filter loop measures the peak of what it wrote
+            r.filtered_peak = max(r.filtered_peak, peak_abs(y) if r.counted is not None else eq.last_peak)
             spool.append(y)
         r.gain_db = auto_gain_db(r.filtered_peak, s.ceiling_dbfs)
         r.extra["spooled_to_disk"] = spool.on_disk
@@ -340,7 +353,7 @@ def _record(r: _Render, out: dict[str, Any], input_sha: str, input_bytes: int, t
                   "time_constants_us": tcs, "roots": r.curve.describe_roots(), "source": r.curve.source,
                   "reference_hz": r.curve.reference_hz},
         "design": r.design.to_dict(), "deviation": deviation, "level": level,
-        "dither": None if r.spec.is_float else {"kind": "TPDF", "generator": "splitmix64",
+        "dither": None if r.spec.is_float else {"kind": "TPDF", "generator": "lowbias32-counter",
                                                   "seed": task.seed, "bits": r.spec.bits},
         "coding_history_row": r.row.rstrip("\r\n"), "rate_change": _rate_record(r), "item": task.item,
         "settings": s.to_dict(),
@@ -356,7 +369,7 @@ def _rate_record(r: _Render) -> dict | None:
     return rc.to_dict(r.counted.frames if r.counted is not None else r.source.frames_read)
 
 
-def _process(task: Task, input_sha: str, input_bytes: int, t0: float, started: datetime) -> dict:
+def _process(task: Task, digest: FileDigest, t0: float, started: datetime) -> dict:
     with Source(task.input_path) as src:
         curve, design, deviation = _design(task.settings, src.rate)
         rc = speed.rate_change(task.settings, src.rate)
@@ -365,7 +378,7 @@ def _process(task: Task, input_sha: str, input_bytes: int, t0: float, started: d
         r = _Render(task, src, spec, curve, design, _work_dtype(src, spec), started, rate_change=rc)
         r.history_in, r.time_reference = src.read_history()
         out = _render(r, final)
-        return _record(r, out, input_sha, input_bytes, t0, deviation)
+        return _record(r, out, *digest.result(), t0, deviation)
 
 
 def _failure(task: Task, error: str, t0: float, started: datetime, input_sha: str | None) -> dict:
@@ -387,19 +400,20 @@ def process_task(task: Task) -> Result:
         ``failed`` with the reason (and a manifest record saying so).
     """
     t0, started = time.perf_counter(), datetime.now().astimezone()
-    input_sha = None
+    digest = None
     try:
         if task.error:
             raise JobError(task.error)
-        input_sha, input_bytes = sha256_file(task.input_path)
-        if _unchanged(task, input_sha):
+        digest = FileDigest(task.input_path)    # hashed in a thread while the file is decoded
+        if task.prior is not None and _unchanged(task, digest.result()[0]):
             return Result("skipped", task.rel, task.output_path, task.duration_s,
                           time.perf_counter() - t0)
-        rec = _process(task, input_sha, input_bytes, t0, started)
+        rec = _process(task, digest, t0, started)
         return Result("done", task.rel, task.output_path, task.duration_s, time.perf_counter() - t0,
                       clips=rec["level"]["clipped_samples"], gain_db=rec["level"]["gain_db"], record=rec)
     except Exception as exc:  # noqa: BLE001 - every failure becomes a reported result
         error = _error_text(exc)
+        input_sha = digest.hex_or_none() if digest is not None else None
         return Result("failed", task.rel, task.output_path, task.duration_s, time.perf_counter() - t0,
                       error=error, record=_failure(task, error, t0, started, input_sha))
 
