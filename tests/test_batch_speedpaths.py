@@ -20,9 +20,16 @@ from pathlib import Path
 import numpy as np
 import pytest
 import soundfile as sf
-from conftest import quick_run, write_audio
+from conftest import write_audio
 
-from dspeq.batch import audio
+from dspeq.batch import Settings, audio, quick_job, read_records, run_job
+
+
+def quick_run(inp: Path, out: Path, **settings):
+    """The quick form in this process, without report.html; (Summary, records by input)."""
+    job = quick_job(inp, out, Settings(curve="riaa", **settings))
+    summary = run_job(job, workers=1, report=False)
+    return summary, {r["input_rel"]: r for r in read_records(job.manifest_path)}
 
 
 def _decoded_md5(path: Path, bits: int) -> str:

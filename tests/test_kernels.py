@@ -51,7 +51,7 @@ def cascade(n_sections):
 # Every loop width (1, 2, 4 lanes; 3 and 7 channels mix them), every unrolled
 # length 1-4 and split cascades (5 = 4 + 1, 9 = 4 + 4 + 1), each compiled once.
 @pytest.mark.parametrize(("n_sections", "channels"),
-                         [(1, 1), (2, 2), (3, 8), (4, 3), (4, 7), (5, 2), (9, 1), (2, 1)])
+                         [(1, 1), (2, 2), (3, 2), (4, 3), (4, 7), (5, 8), (9, 1), (2, 1)])
 def test_float64_bit_identical_to_sosfilt(n_sections, channels):
     rng = np.random.default_rng(n_sections * 10 + channels)
     sos = cascade(n_sections)
@@ -109,7 +109,7 @@ def test_argument_checks():
 
 
 @pytest.mark.parametrize(("lanes", "channels", "n_sections", "stage"),
-                         [(1, 1, 1, "float"), (4, 8, 3, "float"), (2, 2, 2, "pcm")])
+                         [(1, 1, 1, "float"), (4, 8, 1, "float"), (2, 2, 2, "pcm")])
 def test_pure_python_loops_equal_compiled(lanes, channels, n_sections, stage):
     rng = np.random.default_rng(channels + 5 * n_sections)
     sos = cascade(n_sections)
@@ -137,13 +137,26 @@ def test_channel_passes(channels, passes):
     assert K.channel_passes(channels) == passes
 
 
-def test_slp_switch_is_restored_after_compiling():
+def test_slp_switch_is_on_while_compiling_and_restored_after():
+    import numba
     from numba.core import config
 
-    before = config.SLP_VECTORIZE
-    kernel = K._Kernel(lambda a: a + 1.0, slp=True)
-    assert kernel(1.0) == 2.0
-    assert config.SLP_VECTORIZE == before
+    before, seen = config.SLP_VECTORIZE, []
+
+    def add_one(a):
+        return a + 1.0
+
+    dispatcher = numba.njit(add_one)
+    plain = dispatcher.compile
+
+    def spy(sig):
+        seen.append(config.SLP_VECTORIZE)
+        return plain(sig)
+
+    dispatcher.compile = spy
+    K._with_slp_vectorizer(dispatcher)
+    assert dispatcher(1.0) == 2.0
+    assert seen == [1] and config.SLP_VECTORIZE == before
 
 
 # ---------------------------------------------------------------- fused filter + quantizer
