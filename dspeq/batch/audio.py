@@ -521,6 +521,10 @@ def _sample_bytes(block: np.ndarray, bits: int | None) -> memoryview:
     return memoryview(pcm_bytes(block, bits))
 
 
+def _no_sync() -> None:
+    """Stands in for ``SoundFile.flush`` when the Sink syncs by itself."""
+
+
 def _streaminfo_md5(path: str | os.PathLike) -> str | None:
     """The audio MD5 a FLAC encoder stored in STREAMINFO (None if it left it empty)."""
     with open(path, "rb") as f:
@@ -630,28 +634,44 @@ class Sink:
         """
         if self._md5 is not None:
             return self._md5.hexdigest()
-        self._sf.close()
+        self._close_encoder()
         return _streaminfo_md5(self.temp_path) or _decoded_md5(self.temp_path, self.spec.bits)
 
     def commit(self, bext: bwf.Bext | None) -> tuple[str, int]:
-        """Close, add provenance, rename to the final name; return (SHA-256, bytes).
+        """Close, add provenance, sync, rename to the final name; return (SHA-256, bytes).
 
         ``bext`` is appended to WAV/WAVEX/RF64 output; FLAC output gets its
         Vorbis comments filled in; other containers carry no provenance (the
-        manifest does).
+        manifest does). The finished file (provenance included) is synced to
+        disk before the rename; its SHA-256 is computed in a thread meanwhile,
+        from the page cache.
         """
-        self._sf.close()
+        self._close_encoder()
         if bext is not None and self.spec.container in ("wav", "wavex", "rf64"):
             bwf.append_bext(self.temp_path, bext)
         if self.spec.container == "flac" and self.flac_tags:
             bwf.fill_flac_tags(self.temp_path, self.flac_tags)
-        digest = sha256_file(self.temp_path)
+        digest = FileDigest(self.temp_path)
+        with open(self.temp_path, "rb") as f:
+            os.fsync(f.fileno())
+        result = digest.result()
         os.replace(self.temp_path, self.final_path)
-        return digest
+        return result
 
     def abort(self) -> None:
         """Close and delete the temporary file (after a failure)."""
         try:
-            self._sf.close()
+            self._close_encoder()
         finally:
             _unlink(self.temp_path)
+
+    def _close_encoder(self) -> None:
+        """Finish the encoding and close, without libsndfile's own fsync.
+
+        soundfile's ``close()`` first calls ``flush()`` (``sf_write_sync``,
+        which only fsyncs); :meth:`commit` syncs once, after the provenance
+        is written, overlapped with hashing.
+        """
+        if not self._sf.closed:
+            self._sf.flush = _no_sync
+            self._sf.close()
