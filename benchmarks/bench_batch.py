@@ -248,8 +248,8 @@ def steps_table(work: Path) -> list[str]:
                     pcm = clock("dither + quantize", quant, block)
                     clock("encode (libsndfile)", sink.write_pcm, pcm)
                 spool.close()
-            clock("finish encoding (flush, fsync, STREAMINFO)", getattr, sink, "audio_md5")
-            clock("SHA-256 of the output (re-read)", sink.commit, None)
+            clock("finish encoding (last frames, STREAMINFO)", getattr, sink, "audio_md5")
+            clock("fsync of the output, its SHA-256 beside it (commit)", sink.commit, None)
         spent[mode] = clock.spent
         samples = source.frames_read * 2
         out.unlink()
@@ -402,11 +402,14 @@ NOTES = """### Reading these figures
   channels overlap their chains (stereo, 8 channels) or where sosfilt's per-call overhead
   dominates (small blocks). The 8-channel figures also depend on memory bandwidth (60 s of
   8-channel float64 is 370 MB in and out).
-* **Fixed gain.** What remains above the codec is the one kernel pass (filter, TPDF dither,
-  rounding, clip count and peak, about 5 ns per sample) and the SHA-256 of the finished output,
-  which has to read the file again after the encoder has rewritten its header (about 2 ns per
-  sample). The input's SHA-256 runs in a thread while the file is decoded, and the FLAC sample
-  MD5 is the encoder's own (STREAMINFO), so neither adds wall time.
+* **Fixed gain.** What remains above the codec is essentially the one kernel pass (filter,
+  TPDF dither, rounding, clip count and peak, about 5 ns per sample). The hashes add little
+  wall time: the input's SHA-256 runs in a thread while the file is decoded, the FLAC sample
+  MD5 is the encoder's own (STREAMINFO), and the output's SHA-256 (it has to read the file
+  again once the encoder has rewritten its header) runs in a thread while the finished file
+  is synced to disk — one fsync after the tags are written, where the bare run's soundfile
+  close syncs before. Both runs pay one fsync. The CPU time of the threads still counts when
+  all cores are busy (several workers).
 * **Peak-safe.** The first pass keeps the filtered samples (float32, in memory up to the
   64 MB budget, else in a raw temporary file that the page cache usually keeps), so the input
   is decoded once; the second pass reads them back and quantizes.
