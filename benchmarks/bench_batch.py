@@ -431,6 +431,10 @@ NOTES = """### Reading these figures
 * **Peak-safe.** The first pass keeps the filtered samples (float32, in memory up to the
   64 MB budget, else in a raw temporary file that the page cache usually keeps), so the input
   is decoded once; the second pass reads them back and quantizes.
+* **Two workers.** A single worker also keeps the second core busy with its hashing threads
+  (input SHA-256 beside the decoding, output SHA-256 beside the fsync); two workers cannot
+  borrow a core, and each of them makes its own design and loads the kernels. That is why
+  the ratio stays a little under 2 even with long files, and falls with short ones.
 * **Command line.** A fresh `dspeq batch` process also pays fixed costs that a long batch
   amortizes: importing scipy.signal (about 1 s with scipy 1.17) and scipy.optimize for the
   default `fit` design, the fit itself, importing numba and loading the kernels from its
