@@ -436,7 +436,7 @@ NOTES = """### Reading these figures
   borrow a core, and each of them makes its own design and loads the kernels. That is why
   the ratio stays a little under 2 even with long files, and falls with short ones.
 * **Command line.** A fresh `dspeq batch` process also pays fixed costs that a long batch
-  amortizes: importing scipy.signal (about 1 s with scipy 1.17) and scipy.optimize for the
+  amortizes: importing scipy.signal (1.3–1.6 s here, with scipy 1.17) and scipy.optimize for the
   default `fit` design, the fit itself, importing numba and loading the kernels from its
   cache, and matplotlib for the figures of `report.html`.
 """
