@@ -3,7 +3,9 @@
 The filter core: analog playback curves (:class:`Curve`, :func:`curve`,
 :func:`curves`), their digital designs (:func:`design`, :class:`Design`),
 deviation checks (:func:`check`, :class:`Deviation`) and a streaming
-:class:`Equalizer`.  Importing dspeq compiles nothing and imports neither
+:class:`Equalizer`; an oversampled run (:func:`design_oversampled`,
+:class:`OversampledDesign`, :class:`OversampledEqualizer`) for a phase closer
+to the analog curve's at 44.1/48 kHz.  Importing dspeq compiles nothing and imports neither
 audio I/O nor plotting libraries.
 
 Examples
@@ -23,12 +25,14 @@ from ._errors import AudioFileError, CurveError, DesignError, DspeqError, Expres
 from .check import Deviation, check
 from .curves import Curve
 from .design import Design, design, methods
+from .oversample import OversampledDesign, design_oversampled
 from .spec import curve, curves
 
 __version__ = "0.1.0"
 
 __all__ = [
     "Curve", "curve", "curves", "Design", "design", "methods", "check", "Deviation", "Equalizer",
+    "OversampledDesign", "design_oversampled", "OversampledEqualizer",
     "DspeqError", "CurveError", "ExpressionError", "DesignError", "AudioFileError", "JobError",
     "__version__",
 ]
@@ -41,4 +45,8 @@ def __getattr__(name: str):
         from .stream import Equalizer
 
         return Equalizer
+    if name == "OversampledEqualizer":
+        from .oversample import OversampledEqualizer
+
+        return OversampledEqualizer
     raise AttributeError(f"module 'dspeq' has no attribute {name!r}")

@@ -148,9 +148,11 @@ def check(design, band: tuple[float, float] = DEFAULT_BAND, *, points: int = _GR
 
     Parameters
     ----------
-    design : Design
-        From :func:`dspeq.design`; compared with ``design.target`` (the curve
-        with its low-frequency limit applied).
+    design : Design or OversampledDesign
+        From :func:`dspeq.design` (or :func:`dspeq.design_oversampled`: then the
+        whole up-FIR · design · down-FIR chain at the outer rate, its integer
+        latency removed); compared with ``design.target`` (the curve with its
+        low-frequency limit applied).
     band : (float, float), optional
         Frequency band in Hz (default 20 Hz – 20 kHz); the upper edge is limited
         to 0.95 × Nyquist.
@@ -180,6 +182,7 @@ def check(design, band: tuple[float, float] = DEFAULT_BAND, *, points: int = _GR
     w = 2 * math.pi * f / design.fs
     tau = float(np.dot(w, -ph) / np.dot(w, w))
     phase_err = np.degrees(ph + w * tau)
-    gd = digital_group_delay(design.sos, f, design.fs) - tau
+    own_delay = getattr(design, "group_delay_samples", None)   # an oversampled design's chain
+    gd = (own_delay(f) if own_delay is not None else digital_group_delay(design.sos, f, design.fs)) - tau
     gd_err = gd / design.fs - design.target.group_delay(f)
     return Deviation(f, mag, phase_err, gd_err, float(tau), float(design.fs), (lo, hi))

@@ -69,8 +69,16 @@ class Verification:
 
 
 def _settle_frames(design) -> int:
-    """Frames after which the slowest pole has decayed below ``_TAIL_RELATIVE``."""
+    """Frames after which the slowest pole has decayed below ``_TAIL_RELATIVE``.
+
+    For an oversampled design: the inner design's, at the outer rate, plus the FIR chain.
+    """
     from scipy import signal
+
+    from .oversample import is_oversampled
+
+    if is_oversampled(design):
+        return _settle_frames(design.inner) // design.factor + 2 * design.latency
 
     r = float(np.max(np.abs(signal.sos2zpk(design.sos)[1]), initial=0.0))
     if r <= 0.0:
@@ -78,8 +86,17 @@ def _settle_frames(design) -> int:
     return int(math.ceil(math.log(_TAIL_RELATIVE) / math.log(r))) + 16
 
 
+def _lead(design) -> int:
+    """Zeros put before a test signal so that an oversampled run's pre-ringing is kept."""
+    return int(getattr(design, "latency", 0))
+
+
 def _run(design, x: np.ndarray, block_frames: int) -> np.ndarray:
+    from .oversample import filter_aligned, is_oversampled
     from .stream import Equalizer
+
+    if is_oversampled(design):
+        return filter_aligned(design, x, block_frames)
 
     eq = Equalizer(design, channels=1)
     out = np.empty_like(x)
@@ -113,10 +130,11 @@ def _compare(design, freqs: np.ndarray, h_meas: np.ndarray, kind: str, dtype: st
 
 
 def _measure_impulse(design, dtype, block_frames: int, band) -> Measurement:
-    n = 1 << int(math.ceil(math.log2(max(_settle_frames(design), 4 * design.fs / 20.0))))
+    lead = _lead(design)
+    n = 1 << int(math.ceil(math.log2(max(_settle_frames(design) + lead, 4 * design.fs / 20.0))))
     x = np.zeros(n, dtype=dtype)
-    x[0] = 1.0
-    h = np.fft.rfft(_run(design, x, block_frames).astype(np.float64))
+    x[lead] = 1.0
+    h = np.fft.rfft(_run(design, x, block_frames).astype(np.float64)) / np.fft.rfft(x.astype(np.float64))
     f = np.fft.rfftfreq(n, 1.0 / design.fs)
     sel = (f >= band[0]) & (f <= band[1])
     return _compare(design, f[sel], h[sel], "impulse", np.dtype(dtype).name)
@@ -124,10 +142,10 @@ def _measure_impulse(design, dtype, block_frames: int, band) -> Measurement:
 
 def _measure_sweep(design, dtype, block_frames: int, band) -> Measurement:
     x = _sweep(design.fs, 4.0, band[0] / 2, min(band[1] * 1.1, 0.49 * design.fs))
-    tail = _settle_frames(design)
-    n = 1 << int(math.ceil(math.log2(len(x) + tail)))
+    tail, lead = _settle_frames(design), _lead(design)
+    n = 1 << int(math.ceil(math.log2(lead + len(x) + tail)))
     xin = np.zeros(n, dtype=dtype)
-    xin[:len(x)] = x
+    xin[lead:lead + len(x)] = x
     y = _run(design, xin, block_frames).astype(np.float64)
     xs = np.fft.rfft(xin.astype(np.float64))
     ys = np.fft.rfft(y)
@@ -145,8 +163,10 @@ def verify(design, band: tuple[float, float] = DEFAULT_BAND, *, block_frames: in
 
     Parameters
     ----------
-    design : Design
-        The design to prove.
+    design : Design or OversampledDesign
+        The design to prove (an oversampled one runs through
+        :func:`dspeq.oversample.filter_aligned`, its latency removed; the
+        test signals then start after as many zeros, to keep the pre-ringing).
     band : (float, float)
         Frequency band in Hz (upper edge limited to 0.95·Nyquist).
     block_frames : int
