@@ -225,6 +225,11 @@ class OversampledDesign:
         return self.inner.options
 
     @property
+    def order(self) -> int:
+        """Order of the inner design."""
+        return self.inner.order
+
+    @property
     def sections(self) -> int:
         """Biquads of the inner design."""
         return int(self.inner.sos.shape[0])

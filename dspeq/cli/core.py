@@ -7,7 +7,15 @@ import json
 import math
 import sys
 
-from ._common import add_curve_args, add_design_args, curve_from_args, design_from_args, fail, print_table
+from ._common import (
+    add_curve_args,
+    add_design_args,
+    curve_from_args,
+    design_from_args,
+    fail,
+    oversample_factor,
+    print_table,
+)
 
 __all__ = ["register"]
 
@@ -25,7 +33,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     add_curve_args(p)
     add_design_args(p)
     p.add_argument("--format", choices=("json", "csv", "c"), default="json",
-                   help="json (sos, rate, deviation), csv (one section per line) or c (C99 header)")
+                   help="json (sos, rate, deviation), csv (one section per line) or c (C99 header; "
+                        "not for --oversample)")
     p.add_argument("--name", help="identifier prefix for --format c")
     p.set_defaults(func=cmd_design)
 
@@ -86,12 +95,32 @@ def cmd_curves(args: argparse.Namespace) -> int:
     return 0
 
 
+def _oversampled_csv(d) -> str:
+    """CSV of an oversampled run: the inner sections, then the FIR taps of each x2 stage."""
+    head = (f"# dspeq oversampled run x{d.factor}: audio at {d.fs:g} Hz, sections at {d.inner.fs:g} Hz, "
+            f"latency {d.latency} frames; FIR rows: the same taps interpolate (times 2) and decimate")
+    lines = [head, "part,rate_hz,index,b0,b1,b2,a0,a1,a2"]
+    lines += [f"sos,{d.inner.fs:g},{i}," + ",".join(f"{v:.17g}" for v in row)
+              for i, row in enumerate(d.inner.sos)]
+    rate = d.fs
+    for stage, taps in enumerate(d.taps, 1):
+        rate *= 2
+        lines += [f"fir{stage},{rate:g},{i},{v:.17g},,,,," for i, v in enumerate(taps)]
+    return "\n".join(lines) + "\n"
+
+
 def cmd_design(args: argparse.Namespace) -> int:
     from .. import export
+    from .._errors import DesignError
+    from ..oversample import is_oversampled
 
     d = design_from_args(args)
+    over = is_oversampled(d)
+    if args.format == "c" and over:
+        raise DesignError("--format c cannot hold an oversampled run (FIR and sections at two rates); "
+                          "use --format json or csv")
     if args.format == "csv":
-        sys.stdout.write(export.design_to_csv(d))
+        sys.stdout.write(_oversampled_csv(d) if over else export.design_to_csv(d))
     elif args.format == "c":
         sys.stdout.write(export.design_to_c(d, args.name))
     else:
@@ -115,18 +144,41 @@ def _summary_rows(dev) -> list[list[str]]:
             ["group delay error", f"{s['max_group_delay_error_us']:.3f} µs"]]
 
 
+def _oversample_record(d) -> dict:
+    """The ``oversample`` entry of a JSON result (factor 1 when off)."""
+    from ..oversample import is_oversampled
+
+    if not is_oversampled(d):
+        return {"factor": 1}
+    return {"factor": d.factor, "inner_rate": d.inner.fs, "latency_frames": d.latency,
+            "fir_lengths": [len(h) for h in d.taps]}
+
+
+def _heading(d) -> str:
+    """First line of the text outputs: curve, rate, method, sections, oversampling."""
+    from ..oversample import is_oversampled, section_count
+
+    text = f"{d.curve.name} at {d.fs:g} Hz, method {d.method}, {section_count(d)} section(s)"
+    if is_oversampled(d):
+        text += (f" at {d.inner.fs:g} Hz (oversampled x{d.factor}: FIR of "
+                 f"{'+'.join(str(len(h)) for h in d.taps)} taps, latency {d.latency} frames)")
+    return text
+
+
 def cmd_check(args: argparse.Namespace) -> int:
     from ..check import check
+    from ..oversample import section_count
 
     d = design_from_args(args)
     dev = check(d, tuple(args.band))
     if args.format == "json":
-        json.dump({"curve": d.curve.name, "rate": d.fs, "method": d.method, "sections": len(d.sos),
+        json.dump({"curve": d.curve.name, "rate": d.fs, "method": d.method, "sections": section_count(d),
+                   "oversample": _oversample_record(d),
                    "tolerance_db": args.tolerance, "ok": dev.ok(args.tolerance), **dev.summary()},
                   sys.stdout, indent=2)
         print()
     else:
-        print(f"{d.curve.name} at {d.fs:g} Hz, method {d.method}, {len(d.sos)} section(s)")
+        print(_heading(d))
         print_table(_summary_rows(dev), ["measure", "value"])
     if args.plot:
         from ..plot import plot_designs
@@ -143,19 +195,24 @@ def cmd_compare(args: argparse.Namespace) -> int:
 
     from ..check import check
     from ..design import methods
+    from ..oversample import section_count
 
     designs, rows, records = [], [], []
     curve = curve_from_args(args)
+    factor = oversample_factor(args.oversample)
     names = sorted(methods(), key=lambda m: m != "fit")      # the default method first
-    variants = [(name, name, {}) for name in names]
-    variants.insert(names.index("bilinear") + 1, ("bilinear@1k", "bilinear", {"prewarp_hz": 1000.0}))
-    for name, method, options in variants:
+    variants = [(name, name, {}, 1) for name in names]
+    variants.insert(names.index("bilinear") + 1, ("bilinear@1k", "bilinear", {"prewarp_hz": 1000.0}, 1))
+    if factor > 1:
+        variants.insert(1, (f"fit x{factor}", "fit", {}, factor))
+    for name, method, options, over in variants:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            d = design_from_args(args, method=method, **options)
+            d = design_from_args(args, method=method, oversample=over, **options)
         dev = check(d, tuple(args.band))
         designs.append(d)
-        rec = {"method": name, "sections": len(d.sos), "order": d.order, **dev.summary(),
+        rec = {"method": name, "sections": section_count(d), "order": d.order,
+               "oversample": _oversample_record(d), **dev.summary(),
                "warnings": [str(w.message) for w in caught]}
         records.append(rec)
         rows.append([name, str(d.order), _db(dev.max_abs_db), f"{dev.f_at_max:.0f}",
@@ -188,10 +245,11 @@ def cmd_verify(args: argparse.Namespace) -> int:
     v = verify(d, tuple(args.band))
     analytic = check(d, tuple(args.band)).max_abs_db
     if args.format == "json":
-        json.dump({**v.to_dict(), "analytic_max_abs_db": analytic}, sys.stdout, indent=2)
+        json.dump({**v.to_dict(), "oversample": _oversample_record(d), "analytic_max_abs_db": analytic},
+                  sys.stdout, indent=2)
         print()
     else:
-        print(f"{d.curve.name} at {d.fs:g} Hz, method {d.method}, {len(d.sos)} section(s); "
+        print(f"{_heading(d)}; "
               f"streamed in blocks of {v.block_frames} frames; analytic max error {analytic:.5f} dB")
         rows = [[m.signal, m.dtype, f"{m.max_vs_design_db:.2e}", f"{m.max_vs_curve_db:.5f}",
                  f"{m.f_at_max_vs_curve:.0f}", f"{m.analytic_vs_curve_db:.5f}",
