@@ -79,6 +79,10 @@ class Settings:
         rate fs / ``speed`` (no resampling; see :mod:`dspeq.batch.speed`).
     output_rate_hz : float or None
         Resample the output to this rate (after any speed restoration).
+    oversample : int
+        1 (off), 2 or 4: run the design at that multiple of the file's rate
+        between two linear-phase FIR low-passes (:mod:`dspeq.oversample`),
+        the FIR latency removed exactly.
     """
 
     curve: str | None = None
@@ -94,12 +98,13 @@ class Settings:
     dither_seed: int = 0
     restore_speed: bool = False
     output_rate_hz: float | None = None
+    oversample: int = 1
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dict (job-file key names; ``gain_db`` None → ``"auto"``).
 
-        The rate keys appear only when set, so the settings digests of jobs
-        that do not use them are those of earlier versions.
+        The rate and oversampling keys appear only when set, so the settings
+        digests of jobs that do not use them are those of earlier versions.
         """
         d = dataclasses.asdict(self)
         d["from"] = d.pop("from_curve")
@@ -120,11 +125,12 @@ class Settings:
                  else f"gain auto (ceiling {self.ceiling_dbfs:g} dBFS)")
         rate = ("; speed restored" if self.restore_speed else "") + (
             f"; resampled to {self.output_rate_hz:g} Hz" if self.output_rate_hz else "")
-        return f"{curve}; {self.method}; {level}; {self.output_format}/{self.subtype}{rate}"
+        method = self.method + (f" oversampled x{self.oversample}" if self.oversample > 1 else "")
+        return f"{curve}; {method}; {level}; {self.output_format}/{self.subtype}{rate}"
 
 
 #: Settings keys left out of :meth:`Settings.to_dict` at these (default) values.
-_OPTIONAL_KEYS = {"restore_speed": False, "output_rate_hz": None}
+_OPTIONAL_KEYS = {"restore_speed": False, "output_rate_hz": None, "oversample": 1}
 
 
 #: Job-file key → Settings field.
@@ -174,6 +180,16 @@ def _rate(value: Any, key: str, where: str) -> float | None:
     return _number(value, key, where, MIN_RATE, MAX_RATE)
 
 
+def _oversample(value: Any, key: str, where: str) -> int:
+    from ..oversample import FACTORS
+
+    allowed = (1, *FACTORS)
+    if isinstance(value, bool) or value not in allowed or not isinstance(value, int):
+        raise JobError(f"{where}: {key} must be one of {', '.join(map(str, allowed))} (1 = off), "
+                       f"got {value!r}")
+    return int(value)
+
+
 def _seed(value: Any, key: str, where: str) -> int:
     if isinstance(value, bool) or not isinstance(value, int) or value < 0:
         raise JobError(f"{where}: {key} must be a non-negative integer, got {value!r}")
@@ -192,6 +208,7 @@ _CHECKS = {
     "dither_seed": _seed,
     "restore_speed": _flag,
     "output_rate_hz": _rate,
+    "oversample": _oversample,
 }
 
 

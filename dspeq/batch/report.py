@@ -230,10 +230,15 @@ def _designs(recs: list[dict]) -> list:
     seen, out = set(), []
     for rec in recs:
         d = rec["design"]
-        key = (d["rate"], d["method"], str(d["sos"]))
+        key = (d["rate"], d["method"], str(d.get("sos") or d.get("inner", {}).get("sos")))
         if key in seen:
             continue
         seen.add(key)
+        if "oversample" in d:            # an oversampled run: inner sections and FIR taps as recorded
+            from ..oversample import OversampledDesign
+
+            out.append(OversampledDesign.from_dict(d, c))
+            continue
         options = dict(d.get("options") or {})
         target = c.with_lf_limit(options.get("lf_limit_hz", 3.0))
         label = f"{d['method']} at {d['rate']:g} Hz"
@@ -242,7 +247,7 @@ def _designs(recs: list[dict]) -> list:
 
 
 def _png(designs: list, title: str) -> bytes:
-    key = (title, tuple((d.fs, d.method, d.sos.tobytes()) for d in designs))
+    key = (title, tuple((d.fs, d.method, getattr(d, "inner", d).sos.tobytes()) for d in designs))
     hit = _PNG_CACHE.get(key)
     if hit is not None:
         return hit
@@ -273,7 +278,15 @@ def _caption(recs: list[dict], designs: list) -> str:
                      for rate, dv in sorted(devs.items()))
     return (f"<b>{_e(c.get('name'))}</b> ({_e(c.get('roots'))}); source: {_e(c.get('source'))}. "
             f"Used for {len(recs)} file(s). Designs applied (from the manifest's coefficients): "
-            f"{_e(', '.join(d.method for d in designs))}. Deviation 20 Hz – 20 kHz: {_e(errs)}.")
+            f"{_e(', '.join(map(_applied, designs)))}. Deviation 20 Hz – 20 kHz: {_e(errs)}.")
+
+
+def _applied(d) -> str:
+    """A design's name in a caption; an oversampled run says so, with its inner rate and latency."""
+    if not hasattr(d, "factor"):
+        return d.method
+    return (f"{d.method} at {d.fs:g} Hz (oversampled x{d.factor}: sections at {d.inner.fs:g} Hz, "
+            f"FIR latency {d.latency} frames removed)")
 
 
 def curve_figures(records: Sequence[dict], figures: bool = True) -> tuple[list[str], str]:

@@ -7,7 +7,9 @@ in-process, in local worker processes or on Dask workers:
 1. SHA-256 of the original; skip if the manifest's last record of this file
    has the same digest and settings and its output is still there;
 2. design the filter for the file's rate (a design warning — e.g. a rate
-   too low for the curve — fails the file);
+   too low for the curve — fails the file); with ``oversample`` the design
+   runs at 2× or 4× the rate inside a :class:`~dspeq.oversample.OversampledEqualizer`
+   whose FIR latency is removed exactly (:class:`~dspeq.oversample.AlignedStream`);
 3. level: a fixed gain, 0 dB for float output, or (default for integer
    output) the peak-safe mode: a first pass filters the file once, keeps
    the filtered samples (:class:`~dspeq.batch.audio.Spool`) and measures
@@ -171,7 +173,13 @@ def _design(settings, rate: float):
               reference_hz=settings.reference_hz)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        d = design(c, rate, settings.method, lf_limit_hz=settings.lf_limit_hz)
+        if settings.oversample > 1:
+            from ..oversample import design_oversampled
+
+            d = design_oversampled(c, rate, settings.oversample, settings.method,
+                                   lf_limit_hz=settings.lf_limit_hz)
+        else:
+            d = design(c, rate, settings.method, lf_limit_hz=settings.lf_limit_hz)
     if caught:
         raise JobError(f"rate {rate:g} Hz does not suit curve {c.name!r}: {caught[0].message}")
     hit = _DEVIATIONS.get(id(d))
@@ -224,15 +232,17 @@ class _Render:
                                      f"{start}–{start + len(block) - 1} ({exc}): "
                                      f"{self.source.path!r}") from None
             start += len(block)
-            yield y
+            if len(y):                   # an oversampled run holds its first frames back …
+                yield y
+        if hasattr(eq, "finish"):        # … and gives them at the end (dspeq.oversample.AlignedStream)
+            yield eq.finish()
 
 
 def _provenance(r: _Render) -> tuple[str, str, list[tuple[str, str]]]:
     """(CodingHistory text, description, FLAC tags) for the output."""
     s, spec = r.task.settings, r.spec
     dither = f"TPDF dither seed {r.task.seed}" if not spec.is_float else "float; no dither"
-    text = (f"dspeq {_version()}; de-emphasis {r.curve.name}; {r.design.method} "
-            f"{r.design.sos.shape[0]} sections")
+    text = f"dspeq {_version()}; de-emphasis {r.curve.name}; {_design_text(r.design)}"
     level = f"gain {r.gain_db:+.1f} dB; {dither}"
     bits = spec.bits or (64 if spec.subtype == "float64" else 32)
     rc = r.rate_change
@@ -249,6 +259,17 @@ def _provenance(r: _Render) -> tuple[str, str, list[tuple[str, str]]]:
     tags = [("DESCRIPTION", description), ("CODINGHISTORY", history), ("COMMENT", history),
             ("SOFTWARE", f"dspeq {_version()}"), ("DATE", r.started.strftime("%Y-%m-%d"))]
     return history, description, tags
+
+
+def _design_text(d) -> str:
+    """How the filter ran, for CodingHistory: method and sections (and the oversampling)."""
+    from ..oversample import is_oversampled
+
+    if not is_oversampled(d):
+        return f"{d.method} {d.sos.shape[0]} sections"
+    return (f"{d.inner.method} {d.sections} sections at {d.inner.fs:g} Hz, oversampled x{d.factor} "
+            f"(half-band FIR {'+'.join(str(len(h)) for h in d.taps)} taps, latency {d.latency} "
+            "frames removed)")
 
 
 def _version() -> str:
@@ -299,14 +320,18 @@ def _stream(r: _Render, eq) -> Iterable[np.ndarray]:
 
 
 def _render(r: _Render, final: Path) -> dict[str, Any]:
+    from ..oversample import AlignedStream, OversampledEqualizer, is_oversampled
     from ..stream import Equalizer
 
     s = r.task.settings
-    eq = Equalizer(r.design, channels=r.source.channels)
+    over = is_oversampled(r.design)
+    eq = (AlignedStream(OversampledEqualizer(r.design, channels=r.source.channels)) if over
+          else Equalizer(r.design, channels=r.source.channels))
     if s.gain_db is not None or r.spec.is_float:
         r.mode = "fixed" if s.gain_db is not None else "float"
         r.gain_db = s.gain_db or 0.0
-        fuse = not r.spec.is_float and (r.rate_change is None or r.rate_change.resampler is None)
+        fuse = (not r.spec.is_float and not over
+                and (r.rate_change is None or r.rate_change.resampler is None))
         out = _write(r, _stream(r, eq), final, fuse_eq=eq if fuse else None)
         r.filtered_peak = 10 ** ((out["output_peak_dbfs"] or -math.inf) / 20) / 10 ** (r.gain_db / 20)
         return out

@@ -17,7 +17,7 @@ from ._common import CAUTION, add_curve_args, fail
 __all__ = ["register", "cmd_batch", "settings_from_args"]
 
 _PROCESSING = ("curve", "from_curve", "reference_hz", "method", "lf_limit", "gain", "ceiling",
-               "output_format", "subtype", "seed", "manifest", "restore_speed", "output_rate")
+               "output_format", "subtype", "seed", "manifest", "restore_speed", "output_rate", "oversample")
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -40,6 +40,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--method", default=None, metavar="M", help=f"design method (default {d.method})")
     p.add_argument("--lf-limit", type=float, default=None, metavar="HZ",
                    help=f"frequency replacing an ideal integrator (default {d.lf_limit_hz:g})")
+    p.add_argument("--oversample", default=None, metavar="N",
+                   help="run the design at N times each file's rate between two linear-phase FIR "
+                        "low-passes, their latency removed: 1 (off, default), 2 or 4")
     p.add_argument("--gain", default=None, metavar="DB",
                    help="fixed gain in dB, or 'auto' (default): integer output gets the largest "
                         "0.1 dB step that keeps the peak under --ceiling (a first pass measures it); "
@@ -93,12 +96,14 @@ def settings_from_args(args: argparse.Namespace):
     import dataclasses
 
     from ..batch.job import Settings
+    from ._common import oversample_factor
 
     given = {"curve": args.curve, "speed": args.speed, "from_curve": args.from_curve,
              "reference_hz": args.reference_hz, "method": args.method, "lf_limit_hz": args.lf_limit,
              "gain_db": _gain(args.gain), "ceiling_dbfs": args.ceiling,
              "output_format": args.output_format, "subtype": args.subtype, "dither_seed": args.seed,
-             "restore_speed": args.restore_speed, "output_rate_hz": args.output_rate}
+             "restore_speed": args.restore_speed, "output_rate_hz": args.output_rate,
+             "oversample": None if args.oversample is None else oversample_factor(args.oversample)}
     return dataclasses.replace(Settings(), **{k: v for k, v in given.items() if v is not None})
 
 
