@@ -118,7 +118,8 @@ def _stage_taps(fs: float, factor: int) -> tuple[np.ndarray, ...]:
     out, rate = [], fs
     for i in range(int(round(math.log2(factor)))):
         h = halfband_taps(rate, edge)
-        # Stage i contributes (L − 1)/2 samples at 2^(i+1)·fs: (L − 1) must divide by 2^(i+1).
+        # Up + down of stage i delay L − 1 samples at 2^(i+1)·fs: whole frames at fs need
+        # (L − 1) divisible by 2^(i+1); zero taps added at both ends make it so.
         step = 2 ** (i + 1)
         pad = ((-(len(h) - 1)) % step) // 2
         if pad:
@@ -349,6 +350,7 @@ def section_count(design: Any) -> int:
 # ----------------------------------------------------------------------------- streaming
 _RECURSIVE_ONE = np.array([1.0, 0.0])
 
+
 class _Branch:
     """One polyphase branch: a whole-sample delay then an FIR (lfilter with carried ``zi``)."""
 
@@ -491,6 +493,8 @@ class OversampledEqualizer:
 
         frames = self._inner._as_frames(block)       # Equalizer's validation and messages
         Equalizer._check_finite(frames)
+        if not len(frames):
+            return block.copy()
         saved = [b.state() for s in self._stages for b in s.branches]
         try:
             v = frames.astype(np.float64)

@@ -156,6 +156,7 @@ def test_partition_invariance(dtype, factor):
     for trial in range(3):
         eq.reset()
         cuts = np.sort(rng.choice(np.arange(1, len(x)), 1 + 7 * trial, replace=False))
+        cuts = np.append(cuts, cuts[-1])                 # and an empty block
         parts = [eq.process(p) for p in np.split(x, cuts)]
         got = np.concatenate([*parts, eq.finish()])
         assert got.dtype == dtype
