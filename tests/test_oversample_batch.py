@@ -46,7 +46,7 @@ def test_peak_safe_and_float_outputs_are_aligned(tiny, tmp_path):
     yf = sf.read(str(tmp_path / "out" / "f.wav"), always_2d=True)[0]
     np.testing.assert_allclose(yf, reference(tiny / "f.wav"), rtol=0, atol=1e-15)   # float64, 0 dB
     html = (tmp_path / "out" / "report.html").read_text(encoding="utf-8")
-    assert "oversampled x2" in html
+    assert "(oversampled x2: sections at 88200 Hz" in html           # the figure caption
 
 
 def test_fixed_gain_int16(tiny, tmp_path):

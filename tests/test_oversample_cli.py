@@ -86,3 +86,14 @@ def test_bad_oversample_is_one_line_exit_2(capsys, argv, needle):
     code, out, err = run(capsys, *argv)
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1 and needle in err and "Traceback" not in err
+
+
+def test_off_by_default_in_cli_and_batch():
+    from dspeq.batch.job import Settings
+    from dspeq.cli import build_parser
+    from dspeq.cli._common import oversample_factor
+
+    sub = next(a for a in build_parser()._actions if a.dest == "command").choices
+    for name in ("design", "check", "compare", "verify"):
+        default = next(a.default for a in sub[name]._actions if a.dest == "oversample")
+        assert oversample_factor(default) == Settings().oversample == 1
