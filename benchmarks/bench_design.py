@@ -3,8 +3,8 @@
 Each design is timed cold: the in-memory design cache is cleared before every
 call, so the optimizer runs in full (best of ``--repeat`` runs, to take out
 the noise of a shared machine; the median over the curves is printed too).
-The first design of the process also pays for importing the optimizer
-(scipy.optimize); that one-off cost is reported on its own.
+The first design of a fresh process also pays for importing the optimizer
+(dspeq._fit, numpy only); that one-off cost is reported on its own.
 
 Usage::
 
@@ -49,7 +49,7 @@ def cold_design_time(curve: dspeq.Curve, fs: float, repeat: int) -> tuple[float,
 
 
 def first_call_time() -> float:
-    """Wall time of the first design in a fresh interpreter (imports the optimizer)."""
+    """Wall time of the first design in a fresh interpreter (imports dspeq._fit)."""
     code = ("import time, dspeq; t = time.perf_counter(); dspeq.design('riaa', 44100); "
             "print(time.perf_counter() - t)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
@@ -61,7 +61,7 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--repeat", type=int, default=3, help="runs per design; the best is kept")
     args = ap.parse_args(argv)
-    print(f"first design in a fresh process (imports scipy.optimize): {first_call_time() * 1e3:.0f} ms")
+    print(f"first design in a fresh process (imports dspeq._fit): {first_call_time() * 1e3:.0f} ms")
     dspeq.design("riaa", 44100)                                   # warm the imports
     print(f"\ncold design time, best of {args.repeat}; budget {BUDGET_S * 1e3:.0f} ms\n")
     print("| curve | speed | " + " | ".join(f"{fs / 1000:g} kHz" for fs in RATES) + " |")

@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 
 from ._errors import DesignError
+from ._zpk import bilinear_zpk, sos2zpk, sos_response, zpk2sos
 from .curves import Curve
 from .spec import parse_curve
 
@@ -101,9 +102,7 @@ class Design:
     @property
     def zpk(self) -> Zpk:
         """Digital zeros, poles and gain of the cascade."""
-        from scipy import signal
-
-        return signal.sos2zpk(self.sos)
+        return sos2zpk(self.sos)
 
     @property
     def order(self) -> int:
@@ -113,11 +112,7 @@ class Design:
 
     def response(self, f: np.ndarray | float) -> np.ndarray:
         """Complex frequency response at ``f`` (Hz)."""
-        f = np.atleast_1d(np.asarray(f, dtype=float))
-        from scipy import signal
-
-        _, h = signal.sosfreqz(self.sos, worN=f, fs=self.fs)
-        return h
+        return sos_response(self.sos, f, self.fs)
 
     def magnitude_db(self, f: np.ndarray | float) -> np.ndarray:
         """Magnitude of the digital response in dB at ``f`` (Hz)."""
@@ -227,9 +222,7 @@ def _make_design(c: Curve, rate: float, method: str, lf_limit_hz: float, options
         raise DesignError(f"method {method!r}: {exc}") from None
     z, p = np.asarray(z, dtype=complex), np.asarray(p, dtype=complex)
     _check_stable(z, p, float(k), method)
-    from scipy import signal  # imported here: `import dspeq` stays light
-
-    sos = np.ascontiguousarray(signal.zpk2sos(z, p, float(k)), dtype=np.float64)
+    sos = np.ascontiguousarray(zpk2sos(z, p, float(k)), dtype=np.float64)
     sos.setflags(write=False)
     return Design(sos, rate, method, c, target, {"lf_limit_hz": lf_limit_hz, **options})
 
@@ -250,7 +243,7 @@ def _match_gain(curve: Curve, z: np.ndarray, p: np.ndarray, fs: float) -> float:
                  "exact in shape but the frequency axis is warped (a falling curve gets a zero at "
                  "Nyquist: large error near fs/2)",
                  {"prewarp_hz": "frequency (Hz) where the response is made exact (default: none, "
-                                "K = 2fs, identical to scipy.signal.bilinear_zpk)"})
+                                "K = 2fs, as scipy.signal.bilinear_zpk)"})
 def _bilinear(curve: Curve, fs: float, prewarp_hz: float | None = None) -> Zpk:
     fs_eff = fs
     if prewarp_hz is not None:
@@ -258,9 +251,7 @@ def _bilinear(curve: Curve, fs: float, prewarp_hz: float | None = None) -> Zpk:
         if not (0 < prewarp_hz < fs / 2):
             raise DesignError(f"prewarp frequency {prewarp_hz!r} Hz must lie between 0 and fs/2")
         fs_eff = w0 / (2.0 * math.tan(w0 / (2.0 * fs)))
-    from scipy import signal
-
-    return signal.bilinear_zpk(curve.zeros, curve.poles, curve.gain, fs_eff)
+    return bilinear_zpk(curve.zeros, curve.poles, curve.gain, fs_eff)
 
 
 @register_method("matched-z", "matched-z transform z = exp(sT) for every pole and zero, gain matched "

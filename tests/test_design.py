@@ -142,3 +142,18 @@ def test_group_delay_agrees_with_scipy_group_delay():
     b, a = signal.sos2tf(d.sos)
     _, ref = signal.group_delay((b, a), w=f, fs=48000)   # reference: scipy.signal.group_delay
     np.testing.assert_allclose(digital_group_delay(d.sos, f, 48000), ref, rtol=1e-7, atol=1e-9)
+
+
+@pytest.mark.parametrize("method", ["fit", *SIMPLE])
+def test_response_and_zpk_agree_with_scipy(method):
+    # Design.response / Design.zpk are numpy code (dspeq/_zpk.py): scipy.signal is the reference.
+    f = np.geomspace(5.0, 23_000.0, 300)
+    for name in ("riaa", "riaa-iec", "nab-7.5ips", "disc-500-16"):
+        d = design(name, 48000, method=method)
+        _, h = signal.sosfreqz(d.sos, worN=f, fs=48000)            # reference: scipy
+        np.testing.assert_allclose(d.response(f), h, rtol=1e-9)
+        z, p, k = signal.sos2zpk(d.sos)                            # reference: scipy
+        np.testing.assert_allclose(np.sort_complex(d.zpk[0]), np.sort_complex(z), atol=1e-9)
+        np.testing.assert_allclose(np.sort_complex(d.zpk[1]), np.sort_complex(p), atol=1e-9)
+        assert d.zpk[2] == pytest.approx(k, rel=1e-12)
+        np.testing.assert_allclose(d.sos, signal.zpk2sos(*d.zpk), rtol=1e-9, atol=1e-12)
