@@ -17,10 +17,12 @@ as the unknowns:
   bounds in the solver, and, unlike tanh, it does not trap a root that touches
   the bound (the gradient comes back on the other side of the fold);
 * Levenberg–Marquardt (:func:`dspeq._lsq.levenberg_marquardt`, MINPACK's
-  trust-region form in numpy, analytic Jacobian) on the dB error over a log-spaced grid (denser near the top
-  edge), then rounds of Lawson's iteratively re-weighted least squares, which
-  move the weight toward the largest errors and so toward the minimax
-  (equiripple) solution;
+  trust-region form in numpy, analytic Jacobian) on the dB error over a
+  log-spaced grid (denser near the top edge), then rounds of Lawson's
+  iteratively re-weighted least squares, which move the weight toward the
+  largest errors and so toward the minimax (equiripple) solution, and, when
+  those stall, a few rounds weighted by the squared envelope of the error
+  (Rice and Usow's variant), which go further;
 * optionally a phase term: the phase error after removing the best-fit pure
   delay (the same least-squares delay over the whole band as
   :func:`dspeq.check`), at frequencies up to ``PHASE_LIMIT_HZ``, weighted by

@@ -41,28 +41,29 @@ class LMResult:
 
 
 class _Scaled:
-    """SVD of the scaled Jacobian J·D⁻¹ and the projected residuals, for one iterate."""
+    """Spectral form of the scaled problem at one iterate: J·D⁻¹ = U·S·Vᵀ, kept as S², V, S·Uᵀf."""
 
     def __init__(self, jac: np.ndarray, diag: np.ndarray, f: np.ndarray):
         u, s, vt = np.linalg.svd(jac / diag, full_matrices=False)
-        self.s, self.vt, self.c = s, vt, u.T @ f
-        self.s2, self.sc = s * s, s * self.c
-        self.keep = s > 0.0          # as MINPACK: only an exactly singular direction is dropped
+        self.s2, self.v, self.sc = s * s, vt.T, s * (u.T @ f)
+        self.keep = self.s2 > 0.0    # as MINPACK: only an exactly singular direction is dropped
         self.rank_full = bool(np.all(self.keep))
+
+    def _weights(self, par: float, power: int) -> np.ndarray:
+        """(S·Uᵀf)ᵏ/(S² + par)ᵖ with k = 1 for power 1, k = 2 for power 3; 0 where singular."""
+        num = self.sc if power == 1 else self.sc * self.sc
+        den = (self.s2 + par) ** power
+        if par > 0.0:
+            return num / den
+        return np.divide(num, den, out=np.zeros_like(num), where=self.keep)
 
     def step(self, par: float) -> np.ndarray:
         """Scaled step y = D·p minimizing ‖J·p + f‖² + par·‖D·p‖² (pseudo-inverse at par = 0)."""
-        if par > 0.0:
-            return -(self.vt.T @ (self.sc / (self.s2 + par)))
-        return -(self.vt.T @ np.divide(self.c, self.s, out=np.zeros_like(self.c), where=self.keep))
+        return -(self.v @ self._weights(par, 1))
 
     def newton(self, par: float, y_norm: float, delta: float) -> float:
         """Moré's Newton correction of par toward ‖y(par)‖ = delta (Newton on 1/‖y‖)."""
-        if par > 0.0:
-            q = float(np.sum(self.sc ** 2 / (self.s2 + par) ** 3))
-        else:
-            q = float(np.sum(np.divide(self.c ** 2, self.s2 ** 2, out=np.zeros_like(self.c),
-                                       where=self.keep)))
+        q = float(np.sum(self._weights(par, 3)))
         return (y_norm - delta) / delta * y_norm ** 2 / q if q > 0 else 0.0
 
 
