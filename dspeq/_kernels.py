@@ -58,6 +58,25 @@ on ordinary audio (whose states never come near 1e-200) the output stays
 bit-identical to ``sosfilt``; on a decaying tail the output differs from
 ``sosfilt`` by less than 1e-190, far below -300 dBFS.
 
+Fast path
+---------
+For one channel the exact loop cannot go faster than the chain, so
+:func:`filter_unchecked` given :func:`fast_tables` runs another loop
+(``Equalizer(..., exact=False)``): each chunk of ``FAST_LANES * L`` frames
+(``L <= FAST_SPAN``) is cut into FAST_LANES segments, the state at the
+start of every segment is computed ahead by superposition (the chunk's
+state carried over ``L`` silent samples plus the state the segment's input
+leaves from zero, both from tables), and the segments then run the
+ordinary recursion side by side as SIMD lanes, each from its own start
+state. The only loop-carried work left is one small matrix-vector product
+per segment. It is not bit-identical to sosfilt: the start states are
+rounded in another order. The tables are computed in extended precision
+and held in coordinates that stay well conditioned for poles near z = 1
+(see :func:`fast_tables`); with them the error against the recursion in
+extended precision is no larger than sosfilt's own (tests/test_fastpath.py).
+Independent channels already overlap their chains in the exact loops, so
+the fast loop serves mono only.
+
 Dither
 ------
 TPDF dither (Lipshitz, Wannamaker & Vanderkooy, JAES 40(5), 1992) is the
@@ -103,6 +122,9 @@ __all__ = [
     "channel_passes",
     "check_state",
     "filter_quantize_unchecked",
+    "FAST_LANES",
+    "FAST_SPAN",
+    "fast_tables",
     "filter_unchecked",
     "pcm_bytes",
     "peak_abs",
@@ -110,6 +132,7 @@ __all__ = [
     "seed_state",
     "sos_filter",
     "tpdf_dither",
+    "uses_fast_loop",
 ]
 
 #: Frames between two flushes of tiny filter state values (also the chunk
@@ -495,7 +518,8 @@ def _sos_loop_source(n_sections: int, lanes: int, stage: str, round32: bool = Fa
 
 
 _SOS_LOOPS: dict[tuple[int, int, str, bool], _Kernel] = {}
-_LANE_CONSTANTS = {f"U{c}": np.uint64(c) for c in range(max(GROUP_LANES))}
+# Unsigned constants for lane offsets, state indices and the fast loop's lane count.
+_LANE_CONSTANTS = {f"U{c}": np.uint64(c) for c in range(16)}
 
 
 def _sos_loop(n_sections: int, lanes: int, stage: str = "float", round32: bool = False) -> _Kernel:
@@ -525,14 +549,242 @@ def _plan(n_sections: int, channels: int, stage: str, round32: bool) -> tuple:
 
 def _build_sos_loop(n_sections: int, lanes: int, stage: str, round32: bool) -> Callable:
     """Generate and define the pure-Python loop for one cascade length, width and stage."""
+    source = _sos_loop_source(n_sections, lanes, stage, round32)
+    return _define(source, _sos_loop_name(n_sections, lanes, stage, round32))
+
+
+def _define(source: str, name: str) -> Callable:
+    """Define the generated function ``name`` from ``source``."""
     namespace = {"np": np, "FLUSH_EVERY": FLUSH_EVERY, "FLUSH_BELOW": FLUSH_BELOW,
                  "_U32": _U32, "_tpdf_at": _tpdf_at, **_LANE_CONSTANTS}
-    source = _sos_loop_source(n_sections, lanes, stage, round32)
     # Compiled under this file's name so numba's disk cache follows this file.
     exec(compile(source, __file__, "exec"), namespace)  # noqa: S102 - generated here
-    func = namespace[_sos_loop_name(n_sections, lanes, stage, round32)]
+    func = namespace[name]
     func.__module__ = __name__
     return func
+
+
+# --------------------------------------------------------------------------
+# Fast path: segments of a chunk as parallel lanes (not bit-identical)
+# --------------------------------------------------------------------------
+#
+# One channel at a time, a chunk of K * L frames (K = FAST_LANES, L <=
+# FAST_SPAN) is cut into K segments of L frames:
+#
+# pass 1  copies the chunk into ``tf`` (frame j of segment k at j * K + k)
+#         and computes the state at the start of every segment by
+#         superposition: s[k+1] = A^L s[k] + sum_j g[L-1-j] x[k*L + j], with
+#         A^L the cascade's state transition over L samples and g[i] the
+#         state i + 1 samples after a unit impulse (tables of _fast_tables);
+# pass 2  runs the recursion on the K segments as K independent lanes of
+#         ``tf``, each from its own start state, so their dependency chains
+#         overlap (and the SLP vectorizer packs them) like independent
+#         channels; lane K-1 ends with the state of the chunk;
+# pass 3  copies the lanes back to ``out``.
+#
+# Frames left over (fewer than K) run the plain recursion. The result
+# differs from sosfilt's only by rounding: the start states of segments
+# 1..K-1 are computed in another order of operations (tests/test_fastpath.py
+# bounds the difference).
+
+#: Segments (lanes) of a chunk in the fast loop.
+FAST_LANES = 8
+#: Longest segment of the fast loop (frames); the tables cover this many steps.
+FAST_SPAN = 64
+
+
+def _tree(terms: list[str]) -> str:
+    """``terms`` summed as a balanced tree (a short dependency chain)."""
+    while len(terms) > 1:
+        terms = [f"({terms[k]} + {terms[k + 1]})" if k + 1 < len(terms) else terms[k]
+                 for k in range(0, len(terms), 2)]
+    return terms[0]
+
+
+def _fast_pass1_lines(n_state: int) -> list[str]:
+    """Pass 1 for channel ``g``: segments into ``tf``, start states of segments 1..K-1 into ``S``.
+
+    The state is carried in the coordinates of :func:`fast_tables`
+    (``u = (z0, z0 + z1)`` per section) and stored for the lanes in the
+    ``zi`` layout (``z1 = u1 - u0``).
+    """
+    ind = " " * 16
+    acc = [f"f{n}_{u}" for n in range(n_state) for u in range(4)]
+    lines = [*[f"        s{n} = zi[{n // 2}, g, 0]" for n in range(0, n_state, 2)],
+             *[f"        s{n} = zi[{n // 2}, g, 0] + zi[{n // 2}, g, 1]" for n in range(1, n_state, 2)],
+             f"        for k in range({FAST_LANES - 1}):",
+             "            i = np.uint64((start + k * L) * channels + g)",
+             "            t = np.uint64(k)",
+             f"            {' = '.join(acc)} = 0.0",
+             f"            r = np.uint64(L * {n_state})",
+             "            j = 0",
+             "            while j + 4 <= L:"]
+    for u in range(4):  # four partial sums per state: four independent chains
+        lines += [f"{ind}r -= U{n_state}", f"{ind}x{u} = np.float64(xf[i])", f"{ind}tf[t] = x{u}",
+                  f"{ind}i += uch", f"{ind}t += nl"]
+        lines += [f"{ind}f{n}_{u} += gf[r + U{n}] * x{u}" for n in range(n_state)]
+    lines += [f"{ind}j += 4",
+              "            while j < L:",
+              f"{ind}r -= U{n_state}", f"{ind}x0 = np.float64(xf[i])", f"{ind}tf[t] = x0",
+              f"{ind}i += uch", f"{ind}t += nl",
+              *[f"{ind}f{n}_0 += gf[r + U{n}] * x0" for n in range(n_state)],
+              f"{ind}j += 1"]
+    ind = " " * 12
+    for n in range(n_state):
+        lines.append(f"{ind}t{n} = s{n} + (((f{n}_0 + f{n}_1) + (f{n}_2 + f{n}_3)) + "
+                     + _tree([f"dt[L, {n}, {m}] * s{m}" for m in range(n_state)]) + ")")
+    lines += [f"{ind}s{n} = t{n}" for n in range(n_state)]
+    lines += [f"{ind}S[k + 1, {n}] = s{n}" if n % 2 == 0 else f"{ind}S[k + 1, {n}] = s{n} - s{n - 1}"
+              for n in range(n_state)]
+    lines += [f"        i = np.uint64((start + {FAST_LANES - 1} * L) * channels + g)",
+              f"        t = U{FAST_LANES - 1}",
+              "        for _ in range(L):",
+              "            tf[t] = np.float64(xf[i])",
+              "            i += uch",
+              "            t += nl"]
+    return lines
+
+
+def _fast_pass23_lines(n_sections: int) -> list[str]:
+    """Pass 2 (the segments as lanes, in ``tf``) and pass 3 (``tf`` back to ``out``)."""
+    lanes, ind = range(FAST_LANES), " " * 12
+    lines = [f"        z{q}_{s}_{k} = " + (f"zi[{s}, g, {q}]" if k == 0 else f"S[{k}, {2 * s + q}]")
+             for s in range(n_sections) for q in (0, 1) for k in lanes]
+    lines += ["        t = np.uint64(0)", "        for _ in range(L):"]
+    lines += [f"{ind}v{k} = tf[t + U{k}]" for k in lanes]
+    lines += _section_lines(n_sections, FAST_LANES, ind)
+    lines += [f"{ind}a{k} = abs(v{k})" for k in lanes]
+    lines += [f"{ind}pk{k} = a{k} if a{k} > pk{k} else pk{k}" for k in lanes]
+    lines += [f"{ind}tf[t + U{k}] = v{k}" for k in lanes]
+    lines.append(f"{ind}t += nl")
+    last = FAST_LANES - 1
+    lines += [f"        zi[{s}, g, {q}] = z{q}_{s}_{last}" for s in range(n_sections) for q in (0, 1)]
+    lines += [f"        for k in range({FAST_LANES}):",
+              "            i = np.uint64((start + k * L) * channels + g)",
+              "            t = np.uint64(k)",
+              "            for _ in range(L):",
+              "                of[i] = tf[t]",
+              "                i += uch",
+              "                t += nl"]
+    return lines
+
+
+def _fast_loop_name(n_sections: int) -> str:
+    return f"_fast_loop_{n_sections}s_{FAST_LANES}lanes_{FAST_SPAN}span"
+
+
+def _fast_loop_source(n_sections: int) -> str:
+    """Source of ``_fast_loop_name(n)(sos, gt, dt, x, out, zi)`` -> (finite, peak, frames done).
+
+    The frames left over (fewer than FAST_LANES) are the caller's: the plain
+    loop in the same function would share variables with the lanes and
+    slow them down (measured: a third).
+    """
+    n_state = 2 * n_sections
+    lines = [f"def {_fast_loop_name(n_sections)}(sos, gt, dt, x, out, zi):",
+             *_coefficient_lines(n_sections),
+             "    frames, channels = x.shape",
+             "    xf = x.reshape(-1)",
+             "    of = out.reshape(-1)",
+             "    gf = gt.reshape(-1)",
+             "    uch = np.uint64(channels)",
+             f"    S = np.empty(({FAST_LANES}, {n_state}))",
+             f"    tf = np.empty(gt.shape[0] * {FAST_LANES})",
+             "    nl = np.uint64(tf.shape[0] // gt.shape[0])  # at run time: LLVM then leaves pass 3 alone",
+             *[f"    pk{k} = 0.0" for k in range(FAST_LANES)],
+             "    start = 0",
+             "    for g in range(channels):",
+             "        start = 0",
+             f"        while frames - start >= {FAST_LANES}:",
+             f"            L = min(gt.shape[0], (frames - start) // {FAST_LANES})",
+             *["    " + line for line in _fast_pass1_lines(n_state)],
+             *["    " + line for line in _fast_pass23_lines(n_sections)],
+             "            for s in range(zi.shape[0]):",
+             "                for q in range(2):",
+             "                    if abs(zi[s, g, q]) < FLUSH_BELOW:",
+             "                        zi[s, g, q] = 0.0",
+             f"            start += {FAST_LANES} * L",
+             "    peak = 0.0",
+             *[f"    peak = pk{k} if pk{k} > peak else peak" for k in range(FAST_LANES)],
+             "    finite = 0.0",
+             "    for c in range(channels):",
+             "        for s in range(zi.shape[0]):",
+             "            finite += 0.0 * (zi[s, c, 0] + zi[s, c, 1])",
+             "    return finite == 0.0, peak, start"]
+    return "\n".join(lines) + "\n"
+
+
+_FAST_LOOPS: dict[int, _Kernel] = {}
+
+
+def _fast_loop(n_sections: int) -> _Kernel:
+    """The (lazily compiled) fast loop for a cascade length (1 .. MAX_UNROLLED_SECTIONS)."""
+    with _COMPILE_LOCK:
+        if n_sections not in _FAST_LOOPS:
+            source = _fast_loop_source(n_sections)
+            _FAST_LOOPS[n_sections] = _Kernel(
+                _define(source, _fast_loop_name(n_sections)), slp=True)
+    return _FAST_LOOPS[n_sections]
+
+
+def fast_tables(sos: np.ndarray, span: int = FAST_SPAN) -> tuple[np.ndarray, np.ndarray]:
+    """The tables of the fast loop for a cascade: ``(gt, dt)``.
+
+    Parameters
+    ----------
+    sos : ndarray of float64, shape (n_sections, 6)
+    span : int
+        Longest segment the tables serve.
+
+    Returns
+    -------
+    gt : ndarray, shape (span, 2 * n_sections)
+        ``gt[i]``: the state ``i + 1`` samples after a unit impulse (from
+        zero state).
+    dt : ndarray, shape (span + 1, 2 * n_sections, 2 * n_sections)
+        ``dt[L] + I`` is the state transition over ``L`` samples of silence.
+
+    Notes
+    -----
+    States are in the coordinates ``u = (z0, z0 + z1)`` of each section
+    (``z0, z1 = zi[s, c]``), and the transition is stored as its difference
+    from the identity. Both matter for poles near z = 1 (a low-frequency
+    limit of a few Hz): there the ``zi`` coordinates of a state nearly
+    cancel (``z1 ~ -z0``) and the transition over ``L`` samples has entries
+    of order ``L``, so rounding it to float64 would perturb the decay of the
+    slow mode by about ``L`` units in the last place at every segment; in
+    ``u`` the transition is close to the identity plus a small step, and
+    ``I + dt`` keeps the small part exactly. The tables come from running
+    the recursion itself on unit inputs in extended precision
+    (``np.longdouble``: a 64-bit mantissa on x86, plain float64 elsewhere),
+    changed to ``u`` and rounded once. Entries below :data:`FLUSH_BELOW`
+    are set to zero, so the loop never multiplies by a subnormal factor.
+    """
+    n_state = 2 * sos.shape[0]
+    coef = sos.astype(np.longdouble)
+    to_u = np.kron(np.eye(sos.shape[0]), [[1, 0], [1, 1]]).astype(np.longdouble)
+    from_u = np.kron(np.eye(sos.shape[0]), [[1, 0], [-1, 1]]).astype(np.longdouble)
+    # Columns: the unit states (in u), then the impulse (zero state, input 1 at sample 0).
+    z = np.zeros((n_state, n_state + 1), np.longdouble)
+    z[:, :n_state] = from_u
+    x = np.zeros(n_state + 1, np.longdouble)
+    x[n_state] = 1.0
+    dt = np.zeros((span + 1, n_state, n_state))
+    gt = np.empty((span, n_state))
+    for step in range(span):
+        v = x
+        for s, (b0, b1, b2, _, a1, a2) in enumerate(coef):
+            w = b0 * v + z[2 * s]
+            z[2 * s] = b1 * v - a1 * w + z[2 * s + 1]
+            z[2 * s + 1] = b2 * v - a2 * w
+            v = w
+        x = np.zeros_like(x)
+        u = to_u @ z
+        dt[step + 1] = u[:, :n_state] - np.eye(n_state, dtype=np.longdouble)
+        gt[step] = u[:, n_state]
+    for table in (gt, dt):
+        table[np.abs(table) < FLUSH_BELOW] = 0.0
+    return gt, dt
 
 
 _NO_PCM = np.zeros(5)
@@ -598,9 +850,16 @@ def sos_filter(
 
 
 def filter_unchecked(
-    sos: np.ndarray, x: np.ndarray, zi: np.ndarray, out: np.ndarray
+    sos: np.ndarray, x: np.ndarray, zi: np.ndarray, out: np.ndarray,
+    tables: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> tuple[bool, float]:
     """:func:`sos_filter` without argument checks.
+
+    With ``tables`` (from :func:`fast_tables` for this ``sos``), a mono
+    block of a cascade of at most :data:`MAX_UNROLLED_SECTIONS` sections
+    runs the fast loop (see "Fast path" in the module docstring): not
+    bit-identical to :func:`scipy.signal.sosfilt`, within rounding of it.
+    Other blocks take the exact loops whatever ``tables`` is.
 
     Returns
     -------
@@ -612,6 +871,13 @@ def filter_unchecked(
         Largest magnitude of the output, as stored in ``out``.
     """
     n = sos.shape[0]
+    if tables is not None and uses_fast_loop(n, x.shape[1]):
+        finite, peak, done = _fast_loop(n).compiled(sos, tables[0], tables[1], x, out, zi)
+        if done < x.shape[0]:  # fewer than FAST_LANES frames left: the plain loop
+            loop, c0, c1 = _plan(n, 1, "float", False)[0]
+            ok, rest, _ = loop(sos, x[done:], out[done:], zi, c0, c1, _NO_PCM, _NO_KEYS)
+            finite, peak = finite and ok, max(peak, rest)
+        return finite, float(np.float32(peak)) if out.dtype == np.float32 else peak
     if n > MAX_UNROLLED_SECTIONS:  # rare: runs of 4 sections, in float64, then one cast
         y = _long_cascade(sos, x, zi)
         out[...] = y
@@ -628,6 +894,7 @@ def filter_unchecked(
 def filter_quantize_unchecked(
     sos: np.ndarray, x: np.ndarray, zi: np.ndarray, out: np.ndarray,
     gain: float, bits: int, state: np.ndarray,
+    tables: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> tuple[bool, int, float]:
     """Filter ``x`` and quantize the result into ``out`` in one pass.
 
@@ -636,7 +903,9 @@ def filter_quantize_unchecked(
     ``bits`` and ``state``, without the intermediate array: the filter
     output of each chunk of :data:`FLUSH_EVERY` frames stays in a small
     buffer in the cache and is quantized right away. (Channel counts that
-    need several passes, see :func:`channel_passes`, take the two steps.)
+    need several passes, see :func:`channel_passes`, take the two steps,
+    and so do blocks that take the fast loop: ``tables`` as for
+    :func:`filter_unchecked`.)
 
     Returns
     -------
@@ -649,6 +918,8 @@ def filter_quantize_unchecked(
         before the gain: the quantizer's peak is ``peak * abs(gain)``.
     """
     params = _pcm_params(gain, bits)
+    if tables is not None and uses_fast_loop(sos.shape[0], x.shape[1]):
+        return _filter_then_quantize(sos, x, zi, out, gain, bits, state, tables)
     long = sos.shape[0] > MAX_UNROLLED_SECTIONS
     passes = () if long else _plan(sos.shape[0], x.shape[1], "pcm", x.dtype == np.float32)
     if len(passes) != 1:
@@ -666,10 +937,12 @@ def filter_quantize_unchecked(
     return finite, clips, float(np.float32(peak)) if x.dtype == np.float32 else peak
 
 
-def _filter_then_quantize(sos, x, zi, out, gain, bits, state) -> tuple[bool, int, float]:
+def _filter_then_quantize(sos, x, zi, out, gain, bits, state, tables=None) -> tuple[bool, int, float]:
     """:func:`filter_quantize_unchecked` in two steps, through a whole-block array."""
     y = np.empty_like(x)
-    finite, peak = filter_unchecked(sos, x, zi, y)
+    finite, peak = filter_unchecked(sos, x, zi, y, tables)
+    if not finite:
+        return finite, 0, peak
     clips = quantize_tpdf(y, gain, bits, state, out)[0]
     return finite, clips, peak
 
@@ -682,6 +955,16 @@ def _pieces(sos, x, zi, out, gain, bits, state, pieces) -> tuple[bool, int, floa
         ok, c, p = part(sos, x[start:stop], zi, out[start:stop], gain, bits, state)
         finite, clips, peak = finite and ok, clips + c, max(peak, p)
     return finite, clips, peak
+
+
+def uses_fast_loop(n_sections: int, channels: int) -> bool:
+    """Whether :func:`filter_unchecked` given tables runs the fast loop for this shape.
+
+    Mono only: independent channels already overlap their dependency chains
+    in the exact loops, where the fast loop's two copies cost more than
+    they gain (measured in benchmarks/bench_kernel.py).
+    """
+    return channels == 1 and n_sections <= MAX_UNROLLED_SECTIONS
 
 
 def _passes(plan: tuple, sos: np.ndarray, x: np.ndarray, out: np.ndarray, zi: np.ndarray

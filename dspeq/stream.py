@@ -2,7 +2,8 @@
 
 The recursion is :func:`scipy.signal.sosfilt`'s (Direct Form II transposed)
 and the float64 output is bit-identical to it; the loop itself lives in
-:mod:`dspeq._kernels`.
+:mod:`dspeq._kernels`. ``Equalizer(..., exact=False)`` trades bit-identity for
+speed on mono signals (see :class:`Equalizer`).
 """
 
 from __future__ import annotations
@@ -87,6 +88,11 @@ class Equalizer:
         second-order-section array of shape (n_sections, 6) with ``a0 == 1``.
     channels : int, optional
         Number of channels of every block (default 1).
+    exact : bool, optional
+        True (the default): the output is bit-identical to
+        :func:`scipy.signal.sosfilt`. False: mono cascades of up to four
+        sections run a faster loop (below) whose output differs from
+        sosfilt's by rounding only; other shapes are exact either way.
 
     Attributes
     ----------
@@ -98,15 +104,34 @@ class Equalizer:
         A copy of the filter state, in the ``zi`` layout that
         :func:`scipy.signal.sosfilt` uses for a ``(channels, frames)`` signal
         filtered along its last axis.
+    exact : bool
+        Whether the output is bit-identical to sosfilt's.
 
     Notes
     -----
     Output has zero latency: sample ``n`` of the output depends on input
-    samples ``0..n`` only. Processing a signal in blocks of any sizes gives
-    exactly the output of one :func:`scipy.signal.sosfilt` call over the whole
-    signal (bit for bit in float64), except that filter states smaller than
+    samples ``0..n`` only. With ``exact=True``, processing a signal in blocks
+    of any sizes gives exactly the output of one :func:`scipy.signal.sosfilt`
+    call over the whole signal (bit for bit in float64), except that filter states smaller than
     1e-200 are flushed to zero (see :mod:`dspeq._kernels`), which changes
     decaying tails by less than -300 dBFS and keeps them fast.
+
+    A single channel is bound by the recursion's dependency chain: every
+    sample waits for the previous one, and bit-identity forbids reordering
+    the arithmetic. With ``exact=False`` a mono block is cut into segments
+    whose starting states are computed ahead by superposition and which then
+    run side by side (:mod:`dspeq._kernels`, "Fast path"), about 1.7 times
+    the exact loop's speed at large blocks. The state after every block is
+    still the ``zi`` of the signal so far (within rounding), so blocks of any
+    sizes and both modes can follow each other. Accuracy, measured against
+    the same recursion in extended precision (``tests/test_fastpath.py``):
+    the fast path's error is no larger than sosfilt's own (about 1e-14 of the
+    output's peak for a RIAA cascade at 96 kHz; about 2e-11 for a 3 Hz
+    low-frequency limit at 192 kHz, poles at |z| = 0.9999, where sosfilt's
+    float64 recursion itself is that far from the exact result), so the two
+    differ by at most the sum of both. Exact is the default: results that
+    must be reproducible bit for bit (checksums, regression files) stay so
+    unless a caller asks for speed.
 
     Examples
     --------
@@ -128,7 +153,7 @@ class Equalizer:
     dspeq._errors.DspeqError: a 1-D (mono) block needs a 1-channel Equalizer; this one has 2 channels
     """
 
-    def __init__(self, design: Any, channels: int = 1):
+    def __init__(self, design: Any, channels: int = 1, exact: bool = True):
         # The kernels get the writable array (numba compiles read-only arrays
         # separately); users get a read-only view.
         self._coefficients = validate_sos(getattr(design, "sos", design))
@@ -139,6 +164,11 @@ class Equalizer:
         if channels < 1:
             raise DspeqError(f"channels must be a positive integer, got {channels!r}")
         self._channels = int(channels)
+        if not isinstance(exact, bool | np.bool_):
+            raise DspeqError(f"exact must be True or False, got {exact!r}")
+        self._exact = bool(exact)
+        fast = not exact and _kernels.uses_fast_loop(self._sos.shape[0], self._channels)
+        self._tables = _kernels.fast_tables(self._coefficients) if fast else None
         self._zi = np.zeros((self._sos.shape[0], self._channels, 2))
         self._peak = 0.0
 
@@ -151,6 +181,11 @@ class Equalizer:
     def channels(self) -> int:
         """Number of channels of every block."""
         return self._channels
+
+    @property
+    def exact(self) -> bool:
+        """Whether the output is bit-identical to :func:`scipy.signal.sosfilt`."""
+        return self._exact
 
     @property
     def state(self) -> np.ndarray:
@@ -200,7 +235,7 @@ class Equalizer:
             self._check_finite(frames)  # the input is about to be overwritten
         result = np.empty_like(frames) if target is None else target
         zi = self._zi.copy()
-        finite, peak = _kernels.filter_unchecked(self._coefficients, frames, zi, result)
+        finite, peak = _kernels.filter_unchecked(self._coefficients, frames, zi, result, self._tables)
         self._commit(frames, zi, finite, peak)
         return result.reshape(np.shape(block)) if out is None else out
 
@@ -254,7 +289,8 @@ class Equalizer:
         drawn = int(dither_state[1])
         zi = self._zi.copy()
         finite, clips, peak = _kernels.filter_quantize_unchecked(
-            self._coefficients, frames, zi, out.reshape(frames.shape), gain, bits, dither_state)
+            self._coefficients, frames, zi, out.reshape(frames.shape), gain, bits, dither_state,
+            self._tables)
         if not finite:
             dither_state[1] = drawn
         self._commit(frames, zi, finite, peak)
@@ -326,7 +362,8 @@ class Equalizer:
         )
 
     def __repr__(self) -> str:
-        return f"Equalizer(<{self._sos.shape[0]} sections>, channels={self._channels})"
+        fast = "" if self._exact else ", exact=False"
+        return f"Equalizer(<{self._sos.shape[0]} sections>, channels={self._channels}{fast})"
 
 
 def _describe(value: Any) -> str:

@@ -1,0 +1,250 @@
+"""The Equalizer's fast path (``exact=False``): accuracy against scipy.signal.sosfilt
+and against the same recursion in extended precision, continuity, errors.
+
+The fast path gives up bit-identity; its documented contract (dspeq.stream,
+dspeq._kernels "Fast path") is that its error, measured against the recursion
+run in np.longdouble, is no larger than sosfilt's own float64 error, so the two
+differ by about that much: ~1e-14 of the output's peak for ordinary designs,
+~1e-11 when poles sit at |z| = 0.9999.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import signal
+
+from dspeq import _kernels as K
+from dspeq._errors import DspeqError
+from dspeq.stream import Equalizer
+
+FS = 192000
+# RIAA playback (IEC 60098: 3180/318/75 us) with a 3 Hz high-pass instead of
+# the 7950 us term, bilinear at 192 kHz: poles at |z| = 0.99990 (the 3 Hz
+# limit) and 0.99836, two sections.
+_Z, _P, _K = signal.bilinear_zpk(
+    [-1 / 318e-6, 0.0], [-1 / 3180e-6, -1 / 75e-6, -2 * np.pi * 3.0], 1.0, FS)
+SLOW_SOS = np.ascontiguousarray(signal.zpk2sos(_Z, _P, _K))
+# Tape replay with no LF time constant (IEC 15 ips: 35 us, IASA TC-04 Table 1)
+# limited at 3 Hz: (1 + s*35us) / (s + 2*pi*3), one section, pole at 0.99990.
+_Z1, _P1, _K1 = signal.bilinear_zpk([-1 / 35e-6], [-2 * np.pi * 3.0], 1.0, FS)
+TAPE_SOS = np.ascontiguousarray(signal.zpk2sos(_Z1, _P1, _K1))
+
+
+def random_sos(rng, n_sections, max_radius=0.99):
+    """Random stable biquads with poles up to ``max_radius`` and zeros near the circle."""
+    rows = []
+    for _ in range(n_sections):
+        radius, angle = rng.uniform(0.0, max_radius), rng.uniform(0.0, np.pi)
+        zr, za = rng.uniform(0.0, 1.2), rng.uniform(0.0, np.pi)
+        b = np.array([1.0, -2 * zr * np.cos(za), zr**2]) * rng.uniform(0.1, 2.0)
+        rows.append([*b, 1.0, -2 * radius * np.cos(angle), radius**2])
+    return np.array(rows)
+
+
+def extended(sos, x):
+    """The same recursion (DF2T) in np.longdouble: scipy's sosfilt supports that dtype."""
+    return signal.sosfilt(sos.astype(np.longdouble), np.asarray(x, np.longdouble))
+
+
+def run(eq, x, sizes):
+    """Stream ``x`` through ``eq`` in blocks cycling through ``sizes``."""
+    out, i, k = [], 0, 0
+    while i < len(x):
+        n = sizes[k % len(sizes)]
+        out.append(eq.process(x[i:i + n]))
+        i, k = i + n, k + 1
+    return np.concatenate(out)
+
+
+def relative(a, b):
+    return float(np.max(np.abs(np.asarray(a, np.float64) - np.asarray(b, np.float64)))
+                 / np.max(np.abs(np.asarray(b, np.float64))))
+
+
+needs_long_double = pytest.mark.skipif(
+    np.finfo(np.longdouble).nmant < 60, reason="np.longdouble is plain float64 on this platform")
+
+
+# ---------------------------------------------------------------- against sosfilt
+
+
+@pytest.mark.parametrize("n_sections", [1, 2, 3, 4])
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_mono_within_1e12_of_sosfilt(n_sections, dtype):
+    rng = np.random.default_rng(10 * n_sections + (dtype == np.float32))
+    sos = random_sos(rng, n_sections)
+    x = rng.standard_normal(20000).astype(dtype)
+    # Random partition, with blocks shorter than the lane count and longer than a chunk.
+    sizes = [int(s) for s in rng.integers(1, 3000, 12)] + [3, 5000]
+    y = run(Equalizer(sos, exact=False), x, sizes)
+    ref = signal.sosfilt(sos, x.astype(np.float64))
+    assert y.dtype == dtype
+    if dtype == np.float64:
+        assert relative(y, ref) <= 1e-12
+        assert not np.array_equal(y, ref)  # it is the fast path (bit-identity would be exact=True)
+    else:  # float32: the float64 result rounded once; within one float32 step of sosfilt's
+        ref32 = ref.astype(np.float32)
+        assert np.all(np.abs(y - ref32) <= np.spacing(np.abs(ref32)))
+
+
+@pytest.mark.parametrize("channels", [2, 8])
+def test_several_channels_stay_exact(channels):
+    # The fast loop is for mono only; other shapes take the exact loops.
+    rng = np.random.default_rng(channels)
+    sos = random_sos(rng, 2)
+    x = rng.standard_normal((5000, channels))
+    eq = Equalizer(sos, channels, exact=False)
+    y = run(eq, x, [700, 1, 4096])
+    ref, zf = signal.sosfilt(sos, x, axis=0, zi=np.zeros((2, 2, channels)))
+    assert np.array_equal(y, ref)
+    assert np.array_equal(eq.state, zf.transpose(0, 2, 1))
+
+
+def test_state_after_each_block_is_sosfilts_zf():
+    rng = np.random.default_rng(3)
+    sos = random_sos(rng, 3)
+    x = rng.standard_normal(30000)
+    eq = Equalizer(sos, exact=False)
+    done = 0
+    for n in (1, 7, 8, 9, 511, 512, 513, 4096, 10000):
+        eq.process(x[done:done + n])
+        done += n
+        _, zf = signal.sosfilt(sos, x[:done], zi=np.zeros((3, 2)))
+        assert np.max(np.abs(eq.state[:, 0, :] - zf)) <= 1e-12 * np.max(np.abs(zf))
+
+
+def test_fast_then_exact_continue_one_signal():
+    # The state is sosfilt's zi, so a fast run can hand over to an exact one.
+    rng = np.random.default_rng(4)
+    sos = random_sos(rng, 2)
+    x = rng.standard_normal(12000)
+    fast = Equalizer(sos, exact=False)
+    first = fast.process(x[:5000])
+    second, _ = signal.sosfilt(sos, x[5000:], zi=fast.state[:, 0, :])
+    assert relative(np.concatenate([first, second]), signal.sosfilt(sos, x)) <= 1e-12
+
+
+# ---------------------------------------------------------------- accuracy, slow poles
+
+
+@needs_long_double
+@pytest.mark.parametrize(("sos", "label"), [(SLOW_SOS, "riaa+3Hz"), (TAPE_SOS, "tape+3Hz")])
+def test_poles_at_09999_no_worse_than_sosfilt(sos, label):
+    # Poles at |z| = 0.9999 (time constant 10 000 samples): float64
+    # recursions drift from the exact result by up to ~1e-11 of the peak
+    # (two slow poles in one section). The fast path must stay within twice
+    # sosfilt's own error of the extended-precision recursion (plus 1e-14),
+    # and so within 1e-10 of sosfilt.
+    poles = np.concatenate([np.roots(row[3:]) for row in sos])
+    assert np.isclose(np.abs(poles).max(), np.exp(-2 * np.pi * 3 / FS), rtol=1e-6)
+    rng = np.random.default_rng(5)
+    n = 600_000  # 60 time constants (about 3 s at 192 kHz)
+    x = 0.1 * rng.standard_normal(n) + 0.01 * np.cumsum(rng.standard_normal(n)) / np.sqrt(n)
+    y = run(Equalizer(sos, exact=False), x, [65536, 4096, 256, 1000])
+    exact = extended(sos, x)
+    ref = signal.sosfilt(sos, x)
+    own, ours = relative(ref, exact), relative(y, exact)
+    if label == "riaa+3Hz":
+        assert own > 1e-13  # the hazard is real: sosfilt itself drifts here
+    assert ours <= 2 * own + 1e-14, (label, ours, own)
+    assert relative(y, ref) <= 1e-10
+
+
+@needs_long_double
+def test_ordinary_design_tracks_extended_precision():
+    rng = np.random.default_rng(6)
+    sos = random_sos(rng, 2, max_radius=0.95)
+    x = rng.standard_normal(20000)
+    y = Equalizer(sos, exact=False).process(x)
+    assert relative(y, extended(sos, x)) <= 1e-14
+
+
+def test_tables_match_sosfilt_on_unit_inputs():
+    # dt[L] + I and gt, mapped back from u = (z0, z0 + z1) to sosfilt's zi,
+    # are what sosfilt gives for a unit state / a unit impulse.
+    sos = SLOW_SOS
+    gt, dt = K.fast_tables(sos, span=16)
+    back = np.kron(np.eye(2), [[1.0, 0.0], [-1.0, 1.0]])  # u -> (z0, z1) per section
+    to_u = np.linalg.inv(back)
+    for length in (1, 5, 16):
+        for m in range(4):
+            zi = (back @ np.eye(4)[m]).reshape(2, 2)
+            _, zf = signal.sosfilt(sos, np.zeros(length), zi=zi)
+            assert np.allclose(to_u @ zf.ravel(), dt[length][:, m] + np.eye(4)[m], rtol=0, atol=1e-12)
+        impulse = np.zeros(length)
+        impulse[0] = 1.0
+        _, zf = signal.sosfilt(sos, impulse, zi=np.zeros((2, 2)))
+        assert np.allclose(to_u @ zf.ravel(), gt[length - 1], rtol=0, atol=1e-15)
+
+
+# ---------------------------------------------------------------- errors, flush, quantizer
+
+
+@pytest.mark.parametrize("in_place", [False, True])
+def test_nonfinite_block_raises_and_keeps_state(in_place):
+    eq = Equalizer(SLOW_SOS, exact=False)
+    eq.process(np.ones(3000))
+    before = eq.state
+    x = np.ones(5000)
+    x[4321] = np.nan
+    message = r"1 NaN or infinite sample\(s\); first at \(frame, channel\) \(4321, 0\)"
+    with pytest.raises(DspeqError, match=message):
+        eq.process(x, out=x if in_place else None)
+    assert np.array_equal(eq.state, before)
+
+
+def test_flush_keeps_tails_out_of_subnormals():
+    # RIAA playback alone at 48 kHz: an impulse decays into subnormals after
+    # ~106 000 samples in sosfilt (see tests/test_kernels.py); the fast loop
+    # flushes like the exact one.
+    z, p, k = signal.bilinear_zpk([-1 / 318e-6], [-1 / 3180e-6, -1 / 75e-6], 1.0, 48000)
+    sos = np.ascontiguousarray(signal.zpk2sos(z, p, k))
+    x = np.zeros(300_000)
+    x[0] = 1.0
+    eq = Equalizer(sos, exact=False)
+    y = run(eq, x, [65536])
+    ref = signal.sosfilt(sos, x)
+    tiny = np.finfo(np.float64).smallest_normal
+    assert np.count_nonzero((ref != 0) & (np.abs(ref) < tiny)) > 100_000
+    assert np.count_nonzero((y != 0) & (np.abs(y) < tiny)) == 0
+    assert not eq.state.any()
+    assert np.max(np.abs(y - ref)) < 1e-15
+
+
+def test_process_pcm_equals_process_then_quantize():
+    x = (0.3 * np.random.default_rng(7).standard_normal(9000)).astype(np.float32)
+    a, b = Equalizer(SLOW_SOS, exact=False), Equalizer(SLOW_SOS, exact=False)
+    sa, sb = K.seed_state(2), K.seed_state(2)
+    for lo, hi in ((0, 5), (5, 4000), (4000, 9000)):
+        got = np.empty(hi - lo, np.int32)
+        clips, peak = a.process_pcm(x[lo:hi], 0.05, 24, sa, got)
+        y = b.process(x[lo:hi])
+        want = np.empty((hi - lo, 1), np.int32)
+        assert (clips, peak) == K.quantize_tpdf(y[:, None], 0.05, 24, sb, want)
+        assert np.array_equal(got, want[:, 0])
+        assert a.last_peak == np.abs(y).max()  # numpy reference
+    assert np.array_equal(a.state, b.state) and np.array_equal(sa, sb)
+
+
+def test_pure_python_fast_loop_equals_compiled():
+    rng = np.random.default_rng(8)
+    sos = random_sos(rng, 2)
+    gt, dt = K.fast_tables(sos)
+    x = rng.standard_normal((1100, 1))  # two whole chunks of 8 x 64 frames and a short one
+    results = []
+    kernel = K._fast_loop(2)
+    for func in (kernel.py_func, kernel.compiled):
+        zi, y = np.full((2, 1, 2), 0.1), np.empty_like(x)
+        finite, peak, done = func(sos, gt, dt, x, y, zi)
+        results.append((y[:done], zi, bool(finite), float(peak), int(done)))
+    assert np.array_equal(results[0][0], results[1][0]) and np.array_equal(results[0][1], results[1][1])
+    assert results[0][2:] == results[1][2:] and results[0][4] == 1096  # 1100 - 1100 % 8
+
+
+def test_flag_attribute_and_repr():
+    assert Equalizer(SLOW_SOS).exact is True
+    eq = Equalizer(SLOW_SOS, exact=False)
+    assert eq.exact is False and repr(eq) == "Equalizer(<2 sections>, channels=1, exact=False)"
+    with pytest.raises(DspeqError, match="exact must be True or False, got 'no'"):
+        Equalizer(SLOW_SOS, exact="no")
