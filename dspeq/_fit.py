@@ -65,8 +65,9 @@ DEFAULT_MAX_SECTIONS = 4
 _DB = 20.0 / math.log(10.0)
 _N_LOG, _N_TOP = 160, 64         # log-spaced grid points, plus linear ones in the top two octaves
 _IRLS_ROUNDS = 12
-_POLISH_ROUNDS = 6             # rounds of the envelope-weighted polish (see _minimax)
+_POLISH_ROUNDS = 3              # rounds of the envelope-weighted polish (see _minimax)
 _NFEV_FIRST, _NFEV_ROUND = 40, 25
+_NFEV_POLISH = 10                # residual evaluations per polish round
 _MIN_WEIGHT = 1e-3
 _SEED_SPREAD = 1.5               # seed pole at 1.5 × the clipped pole's |s| (see _clip_seeds)
 _HOPELESS_ROUND, _HOPELESS = 2, 4.0   # still this many times tol after this round: more sections
@@ -220,39 +221,58 @@ class _Problem:
         self._memo = None
         return -1.0 if n % 2 else 1.0
 
-    def factors(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Coefficients (1, a1, a2) of every factor, and d(a1, a2)/dx as a (2·factors, params) array."""
+    def _sines(self, x: np.ndarray) -> list[tuple[float, float, float, float, float]]:
+        """Per factor: ρ, sin u, cos u, sin v, cos v (v = 0 for first-order factors).
+
+        A plain loop: for a handful of factors it is several times faster than array code.
+        """
+        lay = self.layout
+        xs = x.tolist()
+        out = []
+        for iu, iv, r in zip(lay.iu.tolist(), lay.iv.tolist(), lay.rho.tolist(), strict=True):
+            v = xs[iv] if iv >= 0 else 0.0
+            out.append((r, math.sin(xs[iu]), math.cos(xs[iu]), math.sin(v), math.cos(v)))
+        return out
+
+    def coefficients(self, x: np.ndarray) -> np.ndarray:
+        """Coefficients (1, a1, a2) of every factor: a1 = ρ(1 + sin v)·sin u, a2 = ρ²·sin v.
+
+        A first-order factor has no v (sin v = 0): a1 = ρ·sin u, a2 = 0.
+        """
+        return np.array([(1.0, r * (1.0 + sv) * su, r * r * sv) for r, su, _, sv, _ in self._sines(x)])
+
+    def derivatives(self, x: np.ndarray) -> np.ndarray:
+        """d(a1, a2)/dx of every factor as a (2·factors, params) array (a1 rows, then a2 rows)."""
         lay = self.layout
         nf = len(lay.iu)
-        coef = np.ones((nf, 3))
         deriv = np.zeros((2 * nf, lay.n_params))
-        for i, (iu, iv, r) in enumerate(zip(lay.iu.tolist(), lay.iv.tolist(), lay.rho.tolist(),
-                                             strict=True)):
-            c, dc = math.sin(x[iu]), math.cos(x[iu])
-            if iv < 0:                                   # 1 + a1 z^-1,  a1 = ρ sin u
-                coef[i, 1] = r * c
-                coef[i, 2] = 0.0
-                deriv[i, iu] = r * dc
-                continue
-            b2, db2 = math.sin(x[iv]), math.cos(x[iv])    # a2 = ρ² sin v,  a1 = ρ (1 + sin v) sin u
-            coef[i, 1:] = r * (1.0 + b2) * c, r * r * b2
-            deriv[i, iu], deriv[i, iv] = r * (1.0 + b2) * dc, r * c * db2
-            deriv[nf + i, iv] = r * r * db2
-        return coef, deriv
+        for i, ((r, su, cu, sv, cv), iu, iv) in enumerate(zip(self._sines(x), lay.iu.tolist(),
+                                                              lay.iv.tolist(), strict=True)):
+            deriv[i, iu] = r * (1.0 + sv) * cu
+            if iv >= 0:
+                deriv[i, iv] = r * su * cv
+                deriv[nf + i, iv] = r * r * cv
+        return deriv
 
     def _state(self, x: np.ndarray) -> dict:
-        """Per-x cache: factor values q = 1 + a1·e⁻ʲʷ + a2·e⁻²ʲʷ and the parameter derivatives."""
+        """Per-x cache: factor values q = 1 + a1·e⁻ʲʷ + a2·e⁻²ʲʷ (derivatives added on demand)."""
         key = x.tobytes()
         if self._memo is None or self._memo[0] != key:
-            coef, deriv = self.factors(x)
-            self._memo = (key, {"q": coef @ self.powers, "deriv": deriv})
+            self._memo = (key, {"q": self.coefficients(x) @ self.powers})
         return self._memo[1]
+
+    def _deriv(self, x: np.ndarray) -> np.ndarray:
+        st = self._state(x)
+        if "deriv" not in st:
+            st["deriv"] = self.derivatives(x)
+        return st["deriv"]
 
     def magnitude(self, x: np.ndarray) -> np.ndarray:
         """Magnitude error (dB) on the grid."""
         st = self._state(x)
         if "mag" not in st:
-            st["mag"] = (x[0] + _DB * (self.layout.sign @ np.log(np.abs(st["q"])))
+            q = st["q"]
+            st["mag"] = (x[0] + (0.5 * _DB) * (self.layout.sign @ np.log(q.real ** 2 + q.imag ** 2))
                          + self.fixed_db - self.target_db)
         return st["mag"]
 
@@ -266,7 +286,7 @@ class _Problem:
 
     def jacobian(self, x: np.ndarray) -> np.ndarray:
         """Jacobian of the dB error by x."""
-        jm = _DB * (self._dlog(x).real.T @ self._state(x)["deriv"])
+        jm = _DB * (self._dlog(x).real.T @ self._deriv(x))
         jm[:, 0] = 1.0
         return jm
 
@@ -274,7 +294,7 @@ class _Problem:
         """(phase error in rad, its Jacobian) on the log grid, before delay removal."""
         st = self._state(x)
         ph = self.layout.sign @ np.angle(st["q"][:, self.on_log]) + self.fixed_ph - self.target_ph
-        return ph, self._dlog(x)[:, self.on_log].imag.T @ st["deriv"]
+        return ph, self._dlog(x)[:, self.on_log].imag.T @ self._deriv(x)
 
     def remove_delay(self, v: np.ndarray) -> np.ndarray:
         """Subtract the least-squares pure delay (the fit in :func:`dspeq.check`) from phase data."""
@@ -341,7 +361,7 @@ def _irls(prob: _Problem, x: np.ndarray, weights: np.ndarray, run: dict, envelop
     stale = 0
     for rnd in range(run["rounds"]):
         fun, jac = _residuals(prob, weights, run["phase_weight"])
-        x = levenberg_marquardt(fun, jac, x, max_nfev=_NFEV_FIRST if rnd == 0 else _NFEV_ROUND).x
+        x = levenberg_marquardt(fun, jac, x, max_nfev=run["nfev"][min(rnd, 1)]).x
         cand = _Result(x, prob.layout, run["sections"], weights, run["seeds"],
                        *_score(prob, x, run["phase_weight"]))
         stale = stale + 1 if best is not None and cand.objective >= 0.98 * best.objective else 0
@@ -370,11 +390,12 @@ def _minimax(prob: _Problem, x: np.ndarray, weights: np.ndarray, seeds: int, sec
     the two is kept.
     """
     run = {"seeds": seeds, "sections": sections, "tol_db": tol_db,
-           "phase_weight": phase_weight, "rounds": _IRLS_ROUNDS, "give_up": not last}
+           "phase_weight": phase_weight, "rounds": _IRLS_ROUNDS, "give_up": not last,
+           "nfev": (_NFEV_FIRST, _NFEV_ROUND)}
     best, gave_up = _irls(prob, x, weights, run, envelope=False)
-    if gave_up or best.max_db <= _GOOD_ENOUGH * tol_db:
-        return best
-    run.update(rounds=_POLISH_ROUNDS, give_up=False)
+    if gave_up or best.max_db <= _GOOD_ENOUGH * tol_db or (best.max_db > tol_db and not last):
+        return best           # good enough already, or one more section will be tried anyway
+    run.update(rounds=_POLISH_ROUNDS, give_up=False, nfev=(_NFEV_POLISH, _NFEV_POLISH))
     start = _reweight(best.weights, np.abs(prob.magnitude(best.x)), envelope=True)
     polished, _ = _irls(prob, best.x, start, run, envelope=True)
     return polished if polished.objective < best.objective else best
@@ -441,7 +462,7 @@ def _extend(prob: _Problem, res: _Result, seeded: tuple[np.ndarray, ...]) -> tup
 
 def _to_zpk(prob: _Problem, res: _Result, n_dc: int, sign: float) -> tuple:
     prob.layout = res.layout
-    coef = prob.factors(res.x)[0]
+    coef = prob.coefficients(res.x)
     zeros: list[complex] = [1.0] * n_dc
     poles: list[complex] = []
     for (_, c1, c2), s in zip(coef, res.layout.sign, strict=True):

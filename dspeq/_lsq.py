@@ -41,30 +41,37 @@ class LMResult:
 
 
 class _Scaled:
-    """Spectral form of the scaled problem at one iterate: J·D⁻¹ = U·S·Vᵀ, kept as S², V, S·Uᵀf."""
+    """Spectral form of the scaled problem at one iterate: J·D⁻¹ = U·S·Vᵀ, kept as S², V, S·Uᵀf.
+
+    The scaled step for a Levenberg parameter ``par`` is y = −V·(S·Uᵀf)/(S² + par), so its
+    length and the Newton correction of ``par`` need no product with V.
+    """
 
     def __init__(self, jac: np.ndarray, diag: np.ndarray, f: np.ndarray):
         u, s, vt = np.linalg.svd(jac / diag, full_matrices=False)
         self.s2, self.v, self.sc = s * s, vt.T, s * (u.T @ f)
-        self.keep = self.s2 > 0.0    # as MINPACK: only an exactly singular direction is dropped
-        self.rank_full = bool(np.all(self.keep))
+        self.sc2 = self.sc * self.sc
+        keep = self.s2 > 0.0          # as MINPACK: only an exactly singular direction is dropped
+        self.rank_full = bool(np.all(keep))
+        self.inv0 = np.divide(1.0, self.s2, out=np.zeros_like(self.s2), where=keep)
 
-    def _weights(self, par: float, power: int) -> np.ndarray:
-        """(S·Uᵀf)ᵏ/(S² + par)ᵖ with k = 1 for power 1, k = 2 for power 3; 0 where singular."""
-        num = self.sc if power == 1 else self.sc * self.sc
-        den = (self.s2 + par) ** power
-        if par > 0.0:
-            return num / den
-        return np.divide(num, den, out=np.zeros_like(num), where=self.keep)
+    def _inverse(self, par: float) -> np.ndarray:
+        return 1.0 / (self.s2 + par) if par > 0.0 else self.inv0
 
     def step(self, par: float) -> np.ndarray:
         """Scaled step y = D·p minimizing ‖J·p + f‖² + par·‖D·p‖² (pseudo-inverse at par = 0)."""
-        return -(self.v @ self._weights(par, 1))
+        return -(self.v @ (self.sc * self._inverse(par)))
 
-    def newton(self, par: float, y_norm: float, delta: float) -> float:
-        """Moré's Newton correction of par toward ‖y(par)‖ = delta (Newton on 1/‖y‖)."""
-        q = float(np.sum(self._weights(par, 3)))
-        return (y_norm - delta) / delta * y_norm ** 2 / q if q > 0 else 0.0
+    def length(self, par: float) -> tuple[float, float]:
+        """‖y(par)‖ and Σ (S·Uᵀf)²/(S² + par)³ (the derivative term of Moré's Newton step)."""
+        inv = self._inverse(par)
+        r = self.sc2 * inv * inv
+        return math.sqrt(float(r.sum())), float((r * inv).sum())
+
+
+def _newton(y_norm: float, q: float, delta: float) -> float:
+    """Moré's Newton correction of par toward ‖y(par)‖ = delta (Newton on 1/‖y‖)."""
+    return (y_norm - delta) / delta * y_norm ** 2 / q if q > 0 else 0.0
 
 
 def _norm(v: np.ndarray) -> float:
@@ -74,11 +81,10 @@ def _norm(v: np.ndarray) -> float:
 def _levenberg_parameter(sc: _Scaled, delta: float, par: float, gnorm: float
                          ) -> tuple[float, np.ndarray]:
     """Levenberg parameter with ‖y‖ within 10 % of ``delta`` (or 0 if Gauss–Newton fits); y."""
-    y = sc.step(0.0)
-    y_norm = _norm(y)
+    y_norm, q = sc.length(0.0)
     if y_norm - delta <= 0.1 * delta:
-        return 0.0, y
-    parl = sc.newton(0.0, y_norm, delta) if sc.rank_full else 0.0
+        return 0.0, sc.step(0.0)
+    parl = _newton(y_norm, q, delta) if sc.rank_full else 0.0
     paru = gnorm / delta
     if paru == 0.0:
         paru = np.finfo(float).tiny / min(delta, 0.1)
@@ -89,8 +95,7 @@ def _levenberg_parameter(sc: _Scaled, delta: float, par: float, gnorm: float
     for _ in range(_PAR_ITER):
         if par == 0.0:
             par = max(np.finfo(float).tiny, 0.001 * paru)
-        y = sc.step(par)
-        y_norm = _norm(y)
+        y_norm, q = sc.length(par)
         fp, previous = y_norm - delta, fp
         if abs(fp) <= 0.1 * delta or (parl == 0.0 and fp <= previous < 0.0):
             break
@@ -98,8 +103,8 @@ def _levenberg_parameter(sc: _Scaled, delta: float, par: float, gnorm: float
             parl = max(parl, par)
         else:
             paru = min(paru, par)
-        par = max(parl, par + sc.newton(par, y_norm, delta))
-    return par, y
+        par = max(parl, par + _newton(y_norm, q, delta))
+    return par, sc.step(par)
 
 
 def _update_radius(delta: float, par: float, ratio: float, actred: float, dirder: float,
