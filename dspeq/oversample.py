@@ -348,41 +348,78 @@ def section_count(design: Any) -> int:
 
 
 # ----------------------------------------------------------------------------- streaming
-_RECURSIVE_ONE = np.array([1.0, 0.0])
+#: Values (frames × channels) per step of the FIR sums: the working arrays stay in cache.
+_CHUNK_VALUES = 32768
+
+
+def _fir_terms(b: np.ndarray) -> list[tuple[int, int | None, float]]:
+    """The nonzero terms of an FIR as (offset, partner offset or None, tap), in summing order.
+
+    Output sample ``i`` of the branch is the sum over the terms of ``tap · (w[i + offset] +
+    w[i + partner])`` (or ``tap · w[i + offset]``), where ``w`` is the branch's (delayed) input
+    with ``len(b) − 1`` earlier frames in front.  A symmetric ``b`` is summed in pairs (half the
+    multiplications).
+    """
+    k = len(b)
+    if k > 1 and np.array_equal(b, b[::-1]):
+        terms = [(k - 1 - j, j, float(b[j])) for j in range(k // 2)]
+        terms += [(k // 2, None, float(b[k // 2]))] if k % 2 else []
+    else:
+        terms = [(k - 1 - j, None, float(b[j])) for j in range(k)]
+    return [t for t in terms if t[2] != 0.0]
+
+
+def _add_term(w: np.ndarray, s: int, e: int, term: tuple[int, int | None, float],
+              out: np.ndarray) -> None:
+    """``out = tap · (w[s+a:e+a] + w[s+p:e+p])`` (or ``tap · w[s+a:e+a]``) for ``term = (a, p, tap)``."""
+    a, p, tap = term
+    if p is None:
+        np.multiply(w[s + a:e + a], tap, out=out)
+    else:
+        np.add(w[s + a:e + a], w[s + p:e + p], out=out)
+        np.multiply(out, tap, out=out)
 
 
 class _Branch:
-    """One polyphase branch: a whole-sample delay then an FIR (lfilter with carried ``zi``)."""
+    """One polyphase branch: a whole-sample delay then an FIR, summed term by term in a fixed order.
+
+    The last ``delay + len(b) − 1`` input frames are carried between blocks; every output
+    sample is computed by the same sequence of float64 operations (first term, then each
+    further term added in turn), so the output does not depend on how the input is cut into
+    blocks nor on the chunks the sums run in.
+    """
 
     def __init__(self, taps: np.ndarray, channels: int, extra_delay: int = 0):
         nz = np.flatnonzero(taps)
-        self.delay = int(nz[0]) + extra_delay
-        self.b = np.ascontiguousarray(taps[nz[0]:nz[-1] + 1])
-        self.hist = np.zeros((self.delay, channels))
-        self.zi = np.zeros((len(self.b) - 1, channels))
+        b = np.asarray(taps[nz[0]:nz[-1] + 1], dtype=float)
+        self.terms = _fir_terms(b)
+        self.hist = np.zeros((int(nz[0]) + extra_delay + len(b) - 1, channels))
+        self.chunk = max(1, _CHUNK_VALUES // channels)
 
     def __call__(self, x: np.ndarray) -> np.ndarray:
-        if self.delay:
-            buf = np.concatenate([self.hist, x])
-            x, self.hist = buf[:len(x)], buf[len(x):]
-        if len(self.b) == 1:
-            return x * self.b[0]
-        from scipy import signal
-
-        # a = [1, 0], not [1]: scipy filters a pure FIR by convolution and adds zi afterwards, which
-        # rounds differently for different block sizes; the recursive (DF-II transposed) path does not.
-        y, self.zi = signal.lfilter(self.b, _RECURSIVE_ONE, x, axis=0, zi=self.zi)
+        n = len(x)
+        w = np.concatenate([self.hist, x])
+        self.hist = w[n:].copy()
+        y = np.empty(x.shape)
+        tmp = np.empty((min(self.chunk, n), x.shape[1]))
+        first, *rest = self.terms
+        for s in range(0, n, self.chunk):
+            e = min(s + self.chunk, n)
+            acc, t = y[s:e], tmp[:e - s]
+            _add_term(w, s, e, first, acc)
+            for term in rest:
+                _add_term(w, s, e, term, t)
+                np.add(acc, t, out=acc)
         return y
 
-    def state(self) -> tuple[np.ndarray, np.ndarray]:
-        return self.hist.copy(), self.zi.copy()
+    def state(self) -> np.ndarray:
+        return self.hist.copy()
 
-    def restore(self, state: tuple[np.ndarray, np.ndarray]) -> None:
-        self.hist, self.zi = state[0].copy(), state[1].copy()
+    def restore(self, state: np.ndarray) -> None:
+        self.hist = state.copy()
 
     def reset(self) -> None:
         self.hist[...] = 0.0
-        self.zi[...] = 0.0
 
 
 class _Stage:
@@ -399,8 +436,9 @@ class _Stage:
 
     def interpolate(self, x: np.ndarray) -> np.ndarray:
         y = np.empty((2 * len(x), x.shape[1]))
-        y[0::2] = self.up[0](x)
-        y[1::2] = self.up[1](x)
+        frame = np.dtype((np.void, y.strides[0]))      # a whole frame as one record: a fast strided copy
+        y.view(frame)[0::2] = self.up[0](x).view(frame)
+        y.view(frame)[1::2] = self.up[1](x).view(frame)
         return y
 
     def decimate(self, v: np.ndarray) -> np.ndarray:
@@ -430,9 +468,12 @@ class OversampledEqualizer:
     multiplications by stuffed zeros), the inner filtering is a
     :class:`dspeq.stream.Equalizer`, decimation filters the even and the
     odd inner samples with their branches (the odd ones carried one sample).
-    All state is carried between blocks, so the output is the same, bit for
-    bit, however the signal is cut into blocks.  The arithmetic is float64
-    throughout; the output has the dtype of the input.
+    Of the two branches of a half-band FIR one is its centre tap alone (a
+    scaled delay); the other is symmetric and sums its taps in pairs.  Each
+    branch carries its last input frames between blocks and computes every
+    output sample by the same sequence of float64 operations (term after term,
+    in a fixed order), so the output is the same, bit for bit, however the
+    signal is cut into blocks.  The output has the dtype of the input.
 
     Examples
     --------

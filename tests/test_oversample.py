@@ -163,6 +163,34 @@ def test_partition_invariance(dtype, factor):
         assert np.array_equal(got, whole)
 
 
+def test_fir_sum_chunks_do_not_change_the_output(monkeypatch):
+    # The partition tests use blocks shorter than one summing step; here every block spans many.
+    od = design_oversampled("riaa", 44100, 4)
+    x = 0.3 * np.random.default_rng(11).standard_normal((1200, 2))
+    whole = OversampledEqualizer(od, channels=2).process(x)
+    monkeypatch.setattr("dspeq.oversample._CHUNK_VALUES", 38)        # 19 frames per step
+    eq = OversampledEqualizer(od, channels=2)
+    assert all(b.chunk == 19 for s in eq._stages for b in s.branches)
+    assert np.array_equal(eq.process(x), whole)
+
+
+@pytest.mark.parametrize("taps", [[0.0, 0.3, -0.2, 0.0, 0.7, 0.1],      # leading and inner zero
+                                  [0.25, -0.5, 0.125, -0.5, 0.25],       # symmetric, odd length
+                                  [0.1, 0.4, 0.4, 0.1]])                 # symmetric, even length
+@pytest.mark.parametrize("extra_delay", [0, 1])
+def test_branch_fir_against_lfilter(taps, extra_delay):
+    from dspeq.oversample import _Branch
+
+    x = np.random.default_rng(len(taps)).standard_normal((400, 2))
+    # Reference: scipy.signal.lfilter of the taps, delayed by extra_delay samples.
+    ref = signal.lfilter(np.r_[np.zeros(extra_delay), taps], [1.0], x, axis=0)
+    br = _Branch(np.array(taps), 2, extra_delay)
+    whole = br(x)
+    np.testing.assert_allclose(whole, ref, rtol=0, atol=1e-14)
+    br.reset()
+    assert np.array_equal(np.concatenate([br(p) for p in np.split(x, [1, 2, 3, 200, 201])]), whole)
+
+
 def test_aligned_output_same_length_and_mono(riaa44):
     x = np.random.default_rng(5).standard_normal(500).astype(np.float32)
     y = filter_aligned(riaa44, x, block_frames=37)            # shorter than the latency per block
