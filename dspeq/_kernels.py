@@ -719,6 +719,8 @@ _FAST_LOOPS: dict[int, _Kernel] = {}
 
 def _fast_loop(n_sections: int) -> _Kernel:
     """The (lazily compiled) fast loop for a cascade length (1 .. MAX_UNROLLED_SECTIONS)."""
+    if n_sections in _FAST_LOOPS:  # without the lock: this is on every block's path
+        return _FAST_LOOPS[n_sections]
     with _COMPILE_LOCK:
         if n_sections not in _FAST_LOOPS:
             source = _fast_loop_source(n_sections)
