@@ -164,14 +164,12 @@ def levenberg_marquardt(fun: Callable[[np.ndarray], np.ndarray],
     st = {"nfev": 1, "fnorm": _norm(f), "par": 0.0, "first": True, "diag": None, "delta": None}
     while True:
         j = np.asarray(jac(x), dtype=float)
-        colnorm = np.sqrt(np.einsum("ij,ij->j", j, j))
+        colnorm = np.sqrt((j * j).sum(axis=0))
         if st["diag"] is None:
             st["diag"] = np.where(colnorm > 0, colnorm, 1.0)
             st["delta"] = _FACTOR * _norm(st["diag"] * x) or _FACTOR
         g = j.T @ f
-        ok = colnorm > 0
-        gnorm = (float(np.max(np.abs(g[ok]) / (colnorm[ok] * st["fnorm"]), initial=0.0))
-                 if st["fnorm"] else 0.0)      # largest |cosine| of f with a column of J
+        gnorm = _cosine(g, colnorm, st["fnorm"])
         if gnorm <= gtol:
             return LMResult(x, 0.5 * st["fnorm"] ** 2, st["nfev"], "gtol")
         st["diag"] = np.maximum(st["diag"], colnorm)
@@ -187,6 +185,16 @@ def levenberg_marquardt(fun: Callable[[np.ndarray], np.ndarray],
                 return LMResult(x, 0.5 * st["fnorm"] ** 2, st["nfev"], status)
             if trial["accepted"]:
                 break
+
+
+def _cosine(g: np.ndarray, colnorm: np.ndarray, fnorm: float) -> float:
+    """Largest |cosine| between the residuals and a (non-zero) column of J: MINPACK's gnorm."""
+    if not fnorm:
+        return 0.0
+    if colnorm.all():
+        return float(np.max(np.abs(g) / colnorm)) / fnorm
+    ok = colnorm > 0
+    return float(np.max(np.abs(g[ok]) / colnorm[ok], initial=0.0)) / fnorm
 
 
 def _trial(fun: Callable[[np.ndarray], np.ndarray], j: np.ndarray, x: np.ndarray, sc: _Scaled,
