@@ -132,7 +132,8 @@ def test_pure_python_loops_equal_compiled(lanes, channels, n_sections, stage):
 
 @pytest.mark.parametrize(("channels", "passes"), [
     (1, ((1, 0, 1),)), (2, ((2, 0, 2),)), (3, ((2, 0, 2), (1, 2, 3))), (4, ((4, 0, 4),)),
-    (7, ((4, 0, 4), (2, 4, 6), (1, 6, 7))), (8, ((4, 0, 8),))])
+    (7, ((4, 0, 4), (2, 4, 6), (1, 6, 7))), (8, ((8, 0, 8),)), (15, ((8, 0, 8), (4, 8, 12),
+    (2, 12, 14), (1, 14, 15))), (16, ((8, 0, 16),))])
 def test_channel_passes(channels, passes):
     assert K.channel_passes(channels) == passes
 
