@@ -194,7 +194,8 @@ def design(curve: Curve | str, fs: float, method: str = DEFAULT_METHOD, *,
     """
     c = parse_curve(curve)
     rate = _validate_rate(fs)
-    _load_optional_methods()
+    if method not in _METHODS:
+        _load_optional_methods()          # only when needed: the other methods skip importing the fit
     if method not in _METHODS:
         raise DesignError(f"unknown method {method!r}; choose from {', '.join(sorted(_METHODS))}")
     options = {k: tuple(v) if isinstance(v, list) else v for k, v in options.items()}
