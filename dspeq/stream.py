@@ -120,8 +120,9 @@ class Equalizer:
     sample waits for the previous one, and bit-identity forbids reordering
     the arithmetic. With ``exact=False`` a mono block is cut into segments
     whose starting states are computed ahead by superposition and which then
-    run side by side (:mod:`dspeq._kernels`, "Fast path"), about 1.7 times
-    the exact loop's speed at large blocks. The state after every block is
+    run side by side (:mod:`dspeq._kernels`, "Fast path"): about 1.4 to 1.6
+    times the exact loop's speed at blocks of 4096 and more (3.2 to 3.7 times
+    sosfilt at 65536; ``benchmarks/bench_kernel.py``). The state after every block is
     still the ``zi`` of the signal so far (within rounding), so blocks of any
     sizes and both modes can follow each other. Accuracy, measured against
     the same recursion in extended precision (``tests/test_fastpath.py``):
