@@ -81,3 +81,19 @@ def test_console_script_help_runs():
     cmd = [exe] if exe else [sys.executable, "-m", "dspeq"]
     res = subprocess.run(cmd + ["--help"], capture_output=True, text=True, check=False, cwd=ROOT)
     assert res.returncode == 0 and "CAUTION" in res.stdout
+
+
+def test_other_commands_do_not_import_the_batch_processor():
+    # `dspeq design` must not pay for importing dspeq.batch (issue 5, start-up);
+    # `dspeq batch --help` still describes every batch option.
+    code = ("import sys, contextlib, io\n"
+            "from dspeq.cli import main\n"
+            "with contextlib.redirect_stdout(io.StringIO()):\n"
+            "    main(['design', 'riaa', '--rate', '48000'])\n"
+            "print(sorted(m for m in sys.modules if m.startswith('dspeq.batch')))\n")
+    root = Path(__file__).resolve().parents[1]
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=root, check=True)
+    assert out.stdout.strip() == "[]"
+    help_text = subprocess.run([sys.executable, "-m", "dspeq", "batch", "--help"], capture_output=True,
+                               text=True, cwd=root, check=True).stdout
+    assert "--oversample" in help_text and "--ceiling" in help_text

@@ -19,8 +19,19 @@ __all__ = ["main", "build_parser"]
 _MODULES = ("core", "batch", "network", "identify")
 
 
-def build_parser() -> argparse.ArgumentParser:
-    """The full argument parser (every registered sub-command)."""
+def build_parser(command: str | None = None) -> argparse.ArgumentParser:
+    """The argument parser of every registered sub-command.
+
+    Parameters
+    ----------
+    command : str, optional
+        The sub-command about to run ("" for none, e.g. ``dspeq --help``).
+        When given, a module with a ``register_summary`` sets up only the
+        name and summary of its command unless that command is the one to
+        run, so that e.g. ``dspeq design`` does not import the batch
+        processor to describe ``dspeq batch``'s options.  By default (None)
+        every command is set up completely.
+    """
     from .. import __version__
 
     parser = argparse.ArgumentParser(
@@ -38,13 +49,22 @@ def build_parser() -> argparse.ArgumentParser:
             if exc.name != f"{__name__}.{name}":
                 raise
             continue
-        module.register(sub)
+        if hasattr(module, "register_summary") and command is not None and command != module.COMMAND:
+            module.register_summary(sub)
+        else:
+            module.register(sub)
     return parser
+
+
+def _command_word(argv: list[str]) -> str:
+    """The sub-command named on the command line (the top level takes no option values)."""
+    return next((a for a in argv if not a.startswith("-")), "")
 
 
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``dspeq`` console script; returns the exit status."""
-    parser = build_parser()
+    argv = sys.argv[1:] if argv is None else list(argv)
+    parser = build_parser(_command_word(argv))
     args = parser.parse_args(argv)
     return run_command(args)
 

@@ -14,10 +14,19 @@ from pathlib import Path
 
 from ._common import CAUTION, add_curve_args, fail
 
-__all__ = ["register", "cmd_batch", "settings_from_args"]
+__all__ = ["register", "register_summary", "cmd_batch", "settings_from_args", "COMMAND"]
+
+#: The sub-command this module adds.
+COMMAND = "batch"
+_SUMMARY = "de-emphasize a folder of transfers (job file or quick form)"
 
 _PROCESSING = ("curve", "from_curve", "reference_hz", "method", "lf_limit", "gain", "ceiling",
                "output_format", "subtype", "seed", "manifest", "restore_speed", "output_rate", "oversample")
+
+
+def register_summary(sub: argparse._SubParsersAction) -> None:
+    """Add only the name and summary of ``batch`` (when another command runs: no batch import)."""
+    sub.add_parser(COMMAND, help=_SUMMARY)
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -27,7 +36,7 @@ def register(sub: argparse._SubParsersAction) -> None:
 
     d = Settings()
     p = sub.add_parser(
-        "batch", help="de-emphasize a folder of transfers (job file or quick form)",
+        COMMAND, help=_SUMMARY,
         description="Process every audio file of an input folder into a mirrored output folder, "
                     "never touching the originals, with a JSON Lines manifest of what was done. "
                     "Either JOB.toml (see batch/README.md) or INPUT_DIR OUTPUT_DIR --curve CURVE.",
