@@ -463,9 +463,9 @@ def _local(tasks: list[Task], workers: int) -> Iterator[Result]:
         os.environ.setdefault(key, value)
     if "forkserver" in multiprocessing.get_all_start_methods():
         ctx = multiprocessing.get_context("forkserver")
-        # Workers are forked from a server that has imported these once (scipy.signal
-        # alone takes about a second to import, numba half of one).
-        ctx.set_forkserver_preload(["dspeq.batch.run", "dspeq._fit", "scipy.signal", "numba", "soundfile"])
+        # Workers are forked from a server that has imported these once (numba alone
+        # takes half a second to import); the design path itself needs no scipy.
+        ctx.set_forkserver_preload(["dspeq.batch.run", "dspeq._fit", "numba", "soundfile"])
     else:
         ctx = multiprocessing.get_context("spawn")
     with ProcessPoolExecutor(max_workers=min(workers, len(tasks)), mp_context=ctx) as pool:
