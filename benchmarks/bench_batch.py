@@ -415,30 +415,34 @@ NOTES = """### Reading these figures
 
 * **Filter kernel.** The recursion of a biquad is a chain of one multiply and three additions
   per sample that bit-identity with `sosfilt` forbids reordering (see "What limits a single
-  channel"). A mono signal therefore runs at that latency, about 2x sosfilt's C loop at large
-  blocks, however the loop is written; the 5x target is reachable only where independent
-  channels overlap their chains (stereo, 8 channels) or where sosfilt's per-call overhead
-  dominates (small blocks). The 8-channel figures also depend on memory bandwidth (60 s of
-  8-channel float64 is 370 MB in and out).
+  channel"). The exact mono loop therefore runs at that latency, about 2x sosfilt's C loop at
+  large blocks, however it is written; independent channels overlap their chains (stereo,
+  8 channels), and at small blocks sosfilt's per-call overhead dominates. The fast mono path
+  (`exact=False`) breaks the chain with segments run as SIMD lanes and reaches about 3x at
+  large blocks; its lane copies and state superposition are what keep it under 5x here. The
+  8-channel figures also depend on memory bandwidth (60 s of 8-channel float64 is 370 MB in
+  and out).
 * **Fixed gain.** What remains above the codec is essentially the one kernel pass (filter,
-  TPDF dither, rounding, clip count and peak, about 5 ns per sample). The hashes add little
-  wall time: the input's SHA-256 runs in a thread while the file is decoded, the FLAC sample
-  MD5 is the encoder's own (STREAMINFO), and the output's SHA-256 (it has to read the file
-  again once the encoder has rewritten its header) runs in a thread while the finished file
-  is synced to disk — one fsync after the tags are written, where the bare run's soundfile
-  close syncs before. Both runs pay one fsync. The CPU time of the threads still counts when
-  all cores are busy (several workers).
+  TPDF dither, rounding, clip count and peak, 5–6 ns per sample, about a tenth of the codec's
+  cost). The hashes add little wall time: the input's SHA-256 runs in a thread while the file
+  is decoded, the FLAC sample MD5 is the encoder's own (STREAMINFO), and the output's SHA-256
+  (it has to read the file again once the encoder has rewritten its header) runs in a thread
+  while the finished file is synced to disk — one fsync after the tags are written, where the
+  bare run's soundfile close syncs before. Both runs pay one fsync. The CPU time of the threads
+  still counts when all cores are busy (several workers).
 * **Peak-safe.** The first pass keeps the filtered samples (float32, in memory up to the
   64 MB budget, else in a raw temporary file that the page cache usually keeps), so the input
   is decoded once; the second pass reads them back and quantizes.
 * **Two workers.** A single worker also keeps the second core busy with its hashing threads
   (input SHA-256 beside the decoding, output SHA-256 beside the fsync); two workers cannot
-  borrow a core, and each of them makes its own design and loads the kernels. That is why
-  the ratio stays a little under 2 even with long files, and falls with short ones.
+  borrow a core. Each worker is forked from a server that has imported dspeq, numba and
+  soundfile once, then makes its own design (numpy only, about 0.1 s) and loads the kernels
+  from numba's cache. That is why the ratio stays a little under 2 even with long files, and
+  falls with short ones.
 * **Command line.** A fresh `dspeq batch` process also pays fixed costs that a long batch
-  amortizes: importing scipy.signal (1.3–1.6 s here, with scipy 1.17) and scipy.optimize for the
-  default `fit` design, the fit itself, importing numba and loading the kernels from its
-  cache, and matplotlib for the figures of `report.html`.
+  amortizes: the imports, the default `fit` design (numpy only since the design path no longer
+  imports scipy), importing numba and loading the kernels from its cache, and matplotlib for
+  the figures of `report.html`.
 """
 
 
