@@ -365,6 +365,27 @@ def oversampled_limit() -> str:
             "the plain filter (see its cost line).")
 
 
+def design_time(repeat: int = 3) -> list[str]:
+    """The design-time section: cold `fit` designs of the catalog at every rate (bench_design.py)."""
+    sys.path.insert(0, str(ROOT / "benchmarks"))
+    import bench_design
+
+    times, over = bench_design.measure_all(repeat)
+    n = sum(len(v) for v in times.values())
+    out = ["## Design time", "",
+           f"Cold `fit` designs (in-memory cache cleared before each; best of {repeat}) of every catalog "
+           f"curve at speed ×1 and ×2, by `benchmarks/bench_design.py`'s functions, in this run. Budget "
+           f"(issue 4): {bench_design.BUDGET_S * 1e3:.0f} ms per curve and rate. Later calls with the "
+           "same (curve, rate, method, options) come from the in-memory cache.", ""]
+    out += [f"* {line}" for line in bench_design.rate_lines(times)]
+    out += [f"* {n - len(over)} of {n} designs within the budget"
+            + "".join(f"; over: {c} ×{sp:g} at {fs / 1000:g} kHz, {t * 1e3:.0f} ms" for c, sp, fs, t in over)
+            + ".",
+            f"* First design in a fresh interpreter (imports the fit, numpy only): "
+            f"{bench_design.first_call_time() * 1e3:.0f} ms.", ""]
+    return out
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--output", default=str(ROOT / "docs" / "accuracy.md"),
@@ -379,7 +400,8 @@ def main(argv: list[str] | None = None) -> int:
         for entry in dspeq.curves():
             for speed in SPEEDS:
                 rows[(entry["name"], speed, fs)] = measure(dspeq.curve(entry["name"], speed=speed), fs)
-    lines = header() + summary(rows) + limits() + oversampled() + corrections() + ["## Every curve", ""]
+    lines = (header() + summary(rows) + limits() + oversampled() + corrections() + design_time()
+             + ["## Every curve", ""])
     for fs in RATES:
         lines += table(rows, fs)
     return _emit("\n".join(lines), args.output)
