@@ -583,8 +583,8 @@ def _define(source: str, name: str) -> Callable:
 # pass 2  runs the recursion on the K segments as K independent lanes of
 #         ``tf``, each from its own start state, so their dependency chains
 #         overlap (and the SLP vectorizer packs them) like independent
-#         channels; lane K-1 ends with the state of the chunk;
-# pass 3  copies the lanes back to ``out``.
+#         channels, and writes each lane's output straight to its segment
+#         of ``out``; lane K-1 ends with the state of the chunk.
 #
 # Frames left over (fewer than K) run the plain recursion. The result
 # differs from sosfilt's only by rounding: the start states of segments
@@ -650,26 +650,28 @@ def _fast_pass1_lines(n_state: int) -> list[str]:
 
 
 def _fast_pass23_lines(n_sections: int) -> list[str]:
-    """Pass 2 (the segments as lanes, in ``tf``) and pass 3 (``tf`` back to ``out``)."""
+    """Pass 2: the segments as lanes (input from ``tf``), each lane's output straight into ``out``.
+
+    The output goes to ``K`` places ``L`` frames apart (scalar stores):
+    cheaper than storing the lanes in ``tf`` and copying them back in a
+    third pass (measured: about 0.3 ns per sample less, data in cache).
+    Reading the input the same way instead of from ``tf`` was slower.
+    """
     lanes, ind = range(FAST_LANES), " " * 12
     lines = [f"        z{q}_{s}_{k} = " + (f"zi[{s}, g, {q}]" if k == 0 else f"S[{k}, {2 * s + q}]")
              for s in range(n_sections) for q in (0, 1) for k in lanes]
-    lines += ["        t = np.uint64(0)", "        for _ in range(L):"]
+    lines += ["        span = np.uint64(L) * uch",
+              *[f"        o{k} = U{k} * span" for k in lanes],
+              "        i = np.uint64(start * channels + g)",
+              "        t = np.uint64(0)", "        for _ in range(L):"]
     lines += [f"{ind}v{k} = tf[t + U{k}]" for k in lanes]
     lines += _section_lines(n_sections, FAST_LANES, ind)
     lines += [f"{ind}a{k} = abs(v{k})" for k in lanes]
     lines += [f"{ind}pk{k} = a{k} if a{k} > pk{k} else pk{k}" for k in lanes]
-    lines += [f"{ind}tf[t + U{k}] = v{k}" for k in lanes]
-    lines.append(f"{ind}t += nl")
+    lines += [f"{ind}of[i + o{k}] = v{k}" for k in lanes]
+    lines += [f"{ind}t += nl", f"{ind}i += uch"]
     last = FAST_LANES - 1
     lines += [f"        zi[{s}, g, {q}] = z{q}_{s}_{last}" for s in range(n_sections) for q in (0, 1)]
-    lines += [f"        for k in range({FAST_LANES}):",
-              "            i = np.uint64((start + k * L) * channels + g)",
-              "            t = np.uint64(k)",
-              "            for _ in range(L):",
-              "                of[i] = tf[t]",
-              "                i += uch",
-              "                t += nl"]
     return lines
 
 
@@ -694,7 +696,7 @@ def _fast_loop_source(n_sections: int) -> str:
              "    uch = np.uint64(channels)",
              f"    S = np.empty(({FAST_LANES}, {n_state}))",
              f"    tf = np.empty(gt.shape[0] * {FAST_LANES})",
-             "    nl = np.uint64(tf.shape[0] // gt.shape[0])  # at run time: LLVM then leaves pass 3 alone",
+             "    nl = np.uint64(tf.shape[0] // gt.shape[0])  # the lane count, at run time",
              *[f"    pk{k} = 0.0" for k in range(FAST_LANES)],
              "    start = 0",
              "    for g in range(channels):",
@@ -967,7 +969,7 @@ def uses_fast_loop(n_sections: int, channels: int) -> bool:
     """Whether :func:`filter_unchecked` given tables runs the fast loop for this shape.
 
     Mono only: independent channels already overlap their dependency chains
-    in the exact loops, where the fast loop's two copies cost more than
+    in the exact loops, where the fast loop's extra passes cost more than
     they gain (measured while it was written: stereo, 2 sections, data in
     cache, about 4.8 ns per sample against the exact loop's 2.8).
     """
