@@ -594,7 +594,7 @@ def _define(source: str, name: str) -> Callable:
 #: Segments (lanes) of a chunk in the fast loop.
 FAST_LANES = 8
 #: Longest segment of the fast loop (frames); the tables cover this many steps.
-FAST_SPAN = 64
+FAST_SPAN = 256
 
 
 def _tree(terms: list[str]) -> str:

@@ -227,11 +227,12 @@ def test_process_pcm_equals_process_then_quantize():
     assert np.array_equal(a.state, b.state) and np.array_equal(sa, sb)
 
 
-def test_pure_python_fast_loop_equals_compiled():
+def _python_and_compiled_agree(frames: int) -> int:
+    """Run the pure-Python and compiled fast loops on ``frames`` frames; frames they did."""
     rng = np.random.default_rng(8)
     sos = random_sos(rng, 2)
     gt, dt = K.fast_tables(sos)
-    x = rng.standard_normal((1100, 1))  # two whole chunks of 8 x 64 frames and a short one
+    x = rng.standard_normal((frames, 1))
     results = []
     kernel = K._fast_loop(2)
     for func in (kernel.py_func, kernel.compiled):
@@ -239,7 +240,18 @@ def test_pure_python_fast_loop_equals_compiled():
         finite, peak, done = func(sos, gt, dt, x, y, zi)
         results.append((y[:done], zi, bool(finite), float(peak), int(done)))
     assert np.array_equal(results[0][0], results[1][0]) and np.array_equal(results[0][1], results[1][1])
-    assert results[0][2:] == results[1][2:] and results[0][4] == 1096  # 1100 - 1100 % 8
+    assert results[0][2:] == results[1][2:]
+    return results[0][4]
+
+
+def test_pure_python_fast_loop_equals_compiled():
+    assert _python_and_compiled_agree(1100) == 1096  # 1100 - 1100 % 8
+
+
+def test_pure_python_fast_loop_equals_compiled_over_whole_spans():
+    # two whole chunks of FAST_LANES x FAST_SPAN frames, a short chunk, 4 frames left over
+    frames = 2 * K.FAST_LANES * K.FAST_SPAN + 100
+    assert _python_and_compiled_agree(frames) == frames - 4
 
 
 def test_flag_attribute_and_repr():
