@@ -18,6 +18,7 @@ import numpy as np
 
 from ._errors import DesignError
 from ._zpk import bilinear_zpk, sos2zpk, sos_response, zpk2sos
+from .check import digital_group_delay
 from .curves import Curve
 from .spec import parse_curve
 
@@ -105,6 +106,11 @@ class Design:
         return sos2zpk(self.sos)
 
     @property
+    def sections(self) -> int:
+        """Number of second-order sections (biquads) the cascade runs."""
+        return int(self.sos.shape[0])
+
+    @property
     def order(self) -> int:
         """Filter order (2 × sections, less trivial first-order padding)."""
         z, p, _ = self.zpk
@@ -117,6 +123,10 @@ class Design:
     def magnitude_db(self, f: np.ndarray | float) -> np.ndarray:
         """Magnitude of the digital response in dB at ``f`` (Hz)."""
         return 20.0 * np.log10(np.abs(self.response(f)))
+
+    def group_delay_samples(self, f: np.ndarray | float) -> np.ndarray:
+        """Group delay of the cascade in samples at ``f`` (Hz)."""
+        return digital_group_delay(self.sos, np.asarray(f, dtype=float), self.fs)
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready description (coefficients, rate, method, curve, options)."""

@@ -42,7 +42,7 @@ import numpy as np
 from ._errors import DesignError, DspeqError
 
 __all__ = ["OversampledDesign", "OversampledEqualizer", "AlignedStream", "design_oversampled",
-           "filter_aligned", "halfband_taps", "fir_figures", "is_oversampled", "section_count",
+           "filter_aligned", "halfband_taps", "fir_figures", "is_oversampled",
            "FACTORS", "MIN_ATTENUATION_DB", "PASSBAND_HZ", "PASSBAND_FRACTION"]
 
 #: Oversampling factors offered (a cascade of ×2 stages).
@@ -148,21 +148,28 @@ def fir_figures(fs: float, factor: int = 2) -> dict[str, Any]:
         over 0 Hz – passband edge) and ``attenuation_db`` (smallest stopband
         attenuation of any stage), from :func:`scipy.signal.freqz`.
     """
+    lengths, edge, ripple_db, attenuation_db = _fir_figures(float(fs), _check_factor(factor))
+    return {"lengths": list(lengths), "passband_hz": edge, "stopband_hz": fs - edge,
+            "ripple_db": ripple_db, "attenuation_db": attenuation_db}
+
+
+@lru_cache(maxsize=64)
+def _fir_figures(fs: float, factor: int) -> tuple[tuple[int, ...], float, float, float]:
+    """(lengths, passband edge, ripple dB, attenuation dB) for :func:`fir_figures`, once per rate."""
     from scipy import signal
 
-    _check_factor(factor)
-    stages = _stage_taps(float(fs), int(factor))
+    stages = _stage_taps(fs, factor)
     edge = _passband_hz(fs)
     f = np.linspace(0.0, edge, 4000)
     chain = np.ones_like(f)
-    att, rate = [], float(fs)
+    att, rate = [], fs
     for h in stages:
         _, resp = signal.freqz(h, worN=f, fs=2 * rate)
         chain = chain * np.abs(resp) ** 2
         att.append(_stopband_db(h, rate - edge, 2 * rate))
         rate *= 2
-    return {"lengths": [len(h) for h in stages], "passband_hz": edge, "stopband_hz": fs - edge,
-            "ripple_db": float(np.max(np.abs(20 * np.log10(chain)))), "attenuation_db": min(att)}
+    return (tuple(len(h) for h in stages), edge, float(np.max(np.abs(20 * np.log10(chain)))),
+            min(att))
 
 
 def _check_factor(factor: Any) -> int:
@@ -233,7 +240,7 @@ class OversampledDesign:
     @property
     def sections(self) -> int:
         """Biquads of the inner design."""
-        return int(self.inner.sos.shape[0])
+        return self.inner.sections
 
     def fir_amplitude(self, f: np.ndarray | float) -> np.ndarray:
         """Real amplitude of the up + down FIR chain at ``f`` (Hz), delay removed."""
@@ -254,9 +261,7 @@ class OversampledDesign:
 
     def group_delay_samples(self, f: np.ndarray | float) -> np.ndarray:
         """Group delay (frames at ``fs``) at ``f`` Hz, latency removed: the inner design's."""
-        from .check import digital_group_delay
-
-        return digital_group_delay(self.inner.sos, np.asarray(f, dtype=float), self.inner.fs) / self.factor
+        return self.inner.group_delay_samples(f) / self.factor
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready description: the inner design, the FIR taps, the rates and the latency."""
@@ -340,11 +345,6 @@ def design_oversampled(curve: Any, fs: float, factor: int = 2, method: str | Non
 def is_oversampled(design: Any) -> bool:
     """True for an :class:`OversampledDesign`."""
     return isinstance(design, OversampledDesign)
-
-
-def section_count(design: Any) -> int:
-    """Biquads a design runs: the inner design's for an oversampled one."""
-    return design.sections if is_oversampled(design) else int(np.shape(design.sos)[0])
 
 
 # ----------------------------------------------------------------------------- streaming

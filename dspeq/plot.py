@@ -10,7 +10,6 @@ from pathlib import Path
 
 from ._errors import DspeqError
 from .check import DEFAULT_BAND, check
-from .oversample import section_count
 
 __all__ = ["plot_designs", "figure_designs"]
 
@@ -48,7 +47,7 @@ def figure_designs(designs: Sequence, band: tuple[float, float] = DEFAULT_BAND, 
     f = devs[0].freqs
     ax_mag.semilogx(f, d0.target.magnitude_db(f), color="black", lw=2.5, label="analog curve")
     for d, dev in zip(designs, devs, strict=True):
-        label = f"{d.label} ({section_count(d)} sect., max {dev.max_abs_db:.3g} dB)"
+        label = f"{d.label} ({d.sections} sect., max {dev.max_abs_db:.3g} dB)"
         ax_mag.semilogx(dev.freqs, d.magnitude_db(dev.freqs), lw=1.2, ls="--", label=label)
         ax_err.semilogx(dev.freqs, dev.magnitude_error_db, lw=1.2, label=d.label)
         ax_ph.semilogx(dev.freqs, dev.phase_error_deg, lw=1.2,

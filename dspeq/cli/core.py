@@ -156,9 +156,9 @@ def _oversample_record(d) -> dict:
 
 def _heading(d) -> str:
     """First line of the text outputs: curve, rate, method, sections, oversampling."""
-    from ..oversample import is_oversampled, section_count
+    from ..oversample import is_oversampled
 
-    text = f"{d.curve.name} at {d.fs:g} Hz, method {d.method}, {section_count(d)} section(s)"
+    text = f"{d.curve.name} at {d.fs:g} Hz, method {d.method}, {d.sections} section(s)"
     if is_oversampled(d):
         text += (f" at {d.inner.fs:g} Hz (oversampled x{d.factor}: FIR of "
                  f"{'+'.join(str(len(h)) for h in d.taps)} taps, latency {d.latency} frames)")
@@ -167,12 +167,11 @@ def _heading(d) -> str:
 
 def cmd_check(args: argparse.Namespace) -> int:
     from ..check import check
-    from ..oversample import section_count
 
     d = design_from_args(args)
     dev = check(d, tuple(args.band))
     if args.format == "json":
-        json.dump({"curve": d.curve.name, "rate": d.fs, "method": d.method, "sections": section_count(d),
+        json.dump({"curve": d.curve.name, "rate": d.fs, "method": d.method, "sections": d.sections,
                    "oversample": _oversample_record(d),
                    "tolerance_db": args.tolerance, "ok": dev.ok(args.tolerance), **dev.summary()},
                   sys.stdout, indent=2)
@@ -195,7 +194,6 @@ def cmd_compare(args: argparse.Namespace) -> int:
 
     from ..check import check
     from ..design import methods
-    from ..oversample import section_count
 
     designs, rows, records = [], [], []
     curve = curve_from_args(args)
@@ -211,7 +209,7 @@ def cmd_compare(args: argparse.Namespace) -> int:
             d = design_from_args(args, method=method, oversample=over, **options)
         dev = check(d, tuple(args.band))
         designs.append(d)
-        rec = {"method": name, "sections": section_count(d), "order": d.order,
+        rec = {"method": name, "sections": d.sections, "order": d.order,
                "oversample": _oversample_record(d), **dev.summary(),
                "warnings": [str(w.message) for w in caught]}
         records.append(rec)
