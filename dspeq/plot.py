@@ -11,18 +11,20 @@ from pathlib import Path
 from ._errors import DspeqError
 from .check import DEFAULT_BAND, check
 
-__all__ = ["plot_designs", "figure_designs"]
+__all__ = ["plot_designs", "figure_designs", "new_figure"]
 
 
-def _pyplot():
+def new_figure(figsize: tuple[float, float]):
+    """A matplotlib ``Figure`` of ``figsize`` inches, made without pyplot.
+
+    No pyplot means no GUI backend, no global figure registry to close and
+    half the import time; ``Figure.savefig`` renders with Agg.
+    """
     try:
-        import matplotlib
-
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
+        from matplotlib.figure import Figure
     except ImportError:
         raise DspeqError("plotting needs matplotlib: pip install 'dspeq[plot]'") from None
-    return plt
+    return Figure(figsize=figsize)
 
 
 def figure_designs(designs: Sequence, band: tuple[float, float] = DEFAULT_BAND, title: str | None = None):
@@ -39,9 +41,9 @@ def figure_designs(designs: Sequence, band: tuple[float, float] = DEFAULT_BAND, 
     """
     if not designs:
         raise DspeqError("nothing to plot: no designs given")
-    plt = _pyplot()
-    fig, (ax_mag, ax_err, ax_ph) = plt.subplots(3, 1, figsize=(9, 9.5), sharex=True,
-                                                gridspec_kw={"height_ratios": [2, 1.3, 1.3]})
+    fig = new_figure((9, 9.5))
+    ax_mag, ax_err, ax_ph = fig.subplots(3, 1, sharex=True,
+                                         gridspec_kw={"height_ratios": [2, 1.3, 1.3]})
     d0 = designs[0]
     devs = [check(d, band) for d in designs]
     f = devs[0].freqs
@@ -66,17 +68,21 @@ def figure_designs(designs: Sequence, band: tuple[float, float] = DEFAULT_BAND, 
         ax_err.set_yscale("symlog", linthresh=1e-3, linscale=0.5)
         ax_err.set_ylabel("magnitude error (dB)\nsymmetric log scale")
     ax_ph.set_xlim(f[0], f[-1])
+    # Minor grid at 2x and 5x each decade (the default 2..9 costs a fifth of the drawing time).
+    from matplotlib.ticker import LogLocator
+
+    ax_ph.xaxis.set_minor_locator(LogLocator(base=10.0, subs=(2.0, 5.0)))
     fig.suptitle(title or f"{d0.curve.name} at {d0.fs:g} Hz ({d0.curve.describe_roots()})")
-    fig.tight_layout()
+    # Fixed margins (room for the two-line labels), not tight_layout: that
+    # draws the whole figure once more just to measure it (most of the
+    # time of a batch report's figure).
+    fig.subplots_adjust(left=0.135, right=0.98, bottom=0.055, top=0.95, hspace=0.1)
     return fig
 
 
 def plot_designs(designs: Sequence, path: str | Path, band: tuple[float, float] = DEFAULT_BAND,
                  title: str | None = None) -> Path:
     """Draw :func:`figure_designs` to a PNG file and return its path."""
-    plt = _pyplot()
-    fig = figure_designs(designs, band, title)
     out = Path(path)
-    fig.savefig(out, dpi=110)
-    plt.close(fig)
+    figure_designs(designs, band, title).savefig(out, dpi=110)
     return out

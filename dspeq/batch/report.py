@@ -253,14 +253,8 @@ def _png(designs: list, title: str) -> bytes:
         return hit
     from ..plot import figure_designs
 
-    fig = figure_designs(designs, title=title)
-    import matplotlib.pyplot as plt
-
-    try:
-        buf = io.BytesIO()
-        fig.savefig(buf, format="png", dpi=_FIGURE_DPI)
-    finally:
-        plt.close(fig)
+    buf = io.BytesIO()
+    figure_designs(designs, title=title).savefig(buf, format="png", dpi=_FIGURE_DPI)
     if len(_PNG_CACHE) >= _PNG_CACHE_MAX:
         _PNG_CACHE.clear()
     _PNG_CACHE[key] = buf.getvalue()

@@ -248,17 +248,12 @@ def _print_parts(result) -> None:
 # ---------------------------------------------------------------------------- plots
 
 
-def _pyplot():
-    try:
-        import matplotlib
-    except ImportError:
-        from .._errors import DspeqError
+def _two_panels():
+    """A pyplot-free figure with two panels sharing the frequency axis."""
+    from ..plot import new_figure
 
-        raise DspeqError("--plot needs matplotlib (pip install 'dspeq[plot]')") from None
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    return plt
+    fig = new_figure((8, 6))
+    return (fig, *fig.subplots(2, 1, sharex=True))
 
 
 def _plot_network(path: str, net, curve, against, args, ref: float) -> None:
@@ -266,10 +261,9 @@ def _plot_network(path: str, net, curve, against, args, ref: float) -> None:
 
     from ..network import tolerance_spread
 
-    plt = _pyplot()
     f = np.geomspace(20.0, 20_000.0, 200)
     nominal = curve.magnitude_db(f) - float(curve.magnitude_db(ref))
-    fig, (top, bottom) = plt.subplots(2, 1, figsize=(8, 6), sharex=True)
+    fig, top, bottom = _two_panels()
     top.semilogx(f, nominal, label=f"{net.name} (0 dB at {ref:g} Hz)")
     if against is not None:
         top.semilogx(f, against.magnitude_db(f), "--", label=against.name)
@@ -288,14 +282,12 @@ def _plot_network(path: str, net, curve, against, args, ref: float) -> None:
         if ax.get_legend_handles_labels()[0]:
             ax.legend()
     fig.savefig(path, dpi=120, bbox_inches="tight")
-    plt.close(fig)
 
 
 def _plot_realization(path: str, result) -> None:
     import numpy as np
 
-    plt = _pyplot()
-    fig, (top, bottom) = plt.subplots(2, 1, figsize=(8, 6), sharex=True)
+    fig, top, bottom = _two_panels()
     ref = result.reference_hz
     target = result.target.magnitude_db(result.freqs) - float(result.target.magnitude_db(ref))
     top.semilogx(result.freqs, target, label=f"{result.target.name} (target)")
@@ -309,4 +301,3 @@ def _plot_realization(path: str, result) -> None:
         ax.grid(True, which="both", alpha=0.3)
     bottom.set_ylim(np.array([-1, 1]) * max(0.05, 1.2 * result.max_deviation_db))
     fig.savefig(path, dpi=120, bbox_inches="tight")
-    plt.close(fig)
