@@ -43,10 +43,13 @@ from ._errors import DesignError, DspeqError
 
 __all__ = ["OversampledDesign", "OversampledEqualizer", "AlignedStream", "design_oversampled",
            "filter_aligned", "halfband_taps", "fir_figures", "is_oversampled",
-           "FACTORS", "MIN_ATTENUATION_DB", "PASSBAND_HZ", "PASSBAND_FRACTION"]
+           "FACTORS", "RUN_FACTORS", "is_factor", "MIN_ATTENUATION_DB", "PASSBAND_HZ",
+           "PASSBAND_FRACTION"]
 
 #: Oversampling factors offered (a cascade of ×2 stages).
 FACTORS = (2, 4)
+#: What a job file or ``--oversample`` accepts: 1 (off) or one of FACTORS.
+RUN_FACTORS = (1, *FACTORS)
 #: Required stopband attenuation (dB) of each FIR.
 MIN_ATTENUATION_DB = 110.0
 #: Attenuation the Kaiser window is designed for (a margin above the requirement).
@@ -172,8 +175,14 @@ def _fir_figures(fs: float, factor: int) -> tuple[tuple[int, ...], float, float,
             min(att))
 
 
+def is_factor(value: Any, allow_off: bool = False) -> bool:
+    """Whether ``value`` is an int (not a bool) in FACTORS, or in RUN_FACTORS with ``allow_off``."""
+    allowed = RUN_FACTORS if allow_off else FACTORS
+    return not isinstance(value, bool) and isinstance(value, int | np.integer) and value in allowed
+
+
 def _check_factor(factor: Any) -> int:
-    if isinstance(factor, bool) or not isinstance(factor, int | np.integer) or factor not in FACTORS:
+    if not is_factor(factor):
         raise DesignError(f"oversampling factor must be one of {', '.join(map(str, FACTORS))}, "
                           f"got {factor!r}")
     return int(factor)

@@ -68,6 +68,15 @@ def test_bad_factor_and_rate():
         design_oversampled("riaa", 192000, 4)
 
 
+def test_one_factor_check_for_core_cli_and_job_file():
+    # The core takes 2 or 4; a job file and --oversample also take 1 (off). One predicate decides.
+    from dspeq.oversample import is_factor
+
+    assert [is_factor(v) for v in (1, 2, 4, np.int64(2))] == [False, True, True, True]
+    assert [is_factor(v, allow_off=True) for v in (1, 2, 4, 3, True, 2.0, "2")] == [
+        True, True, True, False, False, False, False]
+
+
 # ----------------------------------------------------------------------------- accuracy
 def test_catalog_meets_issue_4_targets_at_44k1():
     # issue 4 target: at 44.1 kHz, ≤ 0.002 dB with at most two biquads and ≤ 0.5° to 10 kHz

@@ -181,11 +181,10 @@ def _rate(value: Any, key: str, where: str) -> float | None:
 
 
 def _oversample(value: Any, key: str, where: str) -> int:
-    from ..oversample import FACTORS
+    from ..oversample import RUN_FACTORS, is_factor
 
-    allowed = (1, *FACTORS)
-    if isinstance(value, bool) or value not in allowed or not isinstance(value, int):
-        raise JobError(f"{where}: {key} must be one of {', '.join(map(str, allowed))} (1 = off), "
+    if not is_factor(value, allow_off=True):
+        raise JobError(f"{where}: {key} must be one of {', '.join(map(str, RUN_FACTORS))} (1 = off), "
                        f"got {value!r}")
     return int(value)
 

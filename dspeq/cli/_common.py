@@ -89,15 +89,14 @@ def add_design_args(parser: argparse.ArgumentParser, method: bool = True) -> Non
 def oversample_factor(text: Any) -> int:
     """The ``--oversample`` value as an int: 1 (off) or one of the offered factors."""
     from .._errors import DesignError
-    from ..oversample import FACTORS
+    from ..oversample import RUN_FACTORS, is_factor
 
-    allowed = (1, *FACTORS)
     try:
         factor = int(str(text).strip())
     except ValueError:
         factor = None
-    if factor not in allowed:
-        raise DesignError(f"--oversample must be one of {', '.join(map(str, allowed))}, got {text!r}")
+    if not is_factor(factor, allow_off=True):
+        raise DesignError(f"--oversample must be one of {', '.join(map(str, RUN_FACTORS))}, got {text!r}")
     return factor
 
 
