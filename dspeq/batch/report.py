@@ -277,7 +277,9 @@ def _caption(recs: list[dict], designs: list) -> str:
 
 def _applied(d) -> str:
     """A design's name in a caption; an oversampled run says so, with its inner rate and latency."""
-    if not hasattr(d, "factor"):
+    from ..oversample import is_oversampled
+
+    if not is_oversampled(d):
         return d.method
     return (f"{d.method} at {d.fs:g} Hz (oversampled x{d.factor}: sections at {d.inner.fs:g} Hz, "
             f"FIR latency {d.latency} frames removed)")
