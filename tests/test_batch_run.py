@@ -138,6 +138,38 @@ def test_spool_on_disk_gives_the_same_output(tmp_path, small_tree):
     assert not [p for p in (tmp_path / "disk").rglob(".*")]
 
 
+def test_spool_writes_in_order_from_its_thread_and_reports_write_errors(tmp_path):
+    from dspeq.batch.audio import Spool
+
+    rng = np.random.default_rng(7)
+    blocks = [rng.standard_normal((n, 2)).astype(np.float32) for n in (5, 4096, 1, 300)]
+    spool = Spool(4402, 2, np.float32, 0, tmp_path / "x.spool")
+    buf = np.empty((4096, 2), np.float32)
+    for b in blocks:                       # the caller reuses one buffer, as the batch does
+        buf[:len(b)] = b
+        spool.append(buf[:len(b)])
+    back = np.concatenate([b.copy() for b in spool.blocks(1000)])
+    spool.close()
+    assert np.array_equal(back, np.concatenate(blocks)) and not (tmp_path / "x.spool").exists()
+
+    class Full:                            # a disk that fills up after the first write
+        calls = 0
+
+        def write(self, data):
+            Full.calls += 1
+            if Full.calls > 1:
+                raise OSError(28, "No space left on device")
+
+    from dspeq.batch.audio import _BackgroundWriter
+
+    writer = _BackgroundWriter(Full())
+    with pytest.raises(OSError, match="No space left"):
+        for b in blocks * 50:
+            writer.write(b)
+        writer.finish()
+    writer.stop()
+
+
 def test_unchanged_rerun_skips_and_changed_setting_reprocesses(tmp_path, small_tree):
     out = tmp_path / "out"
     s1, _ = quick_run(small_tree, out)

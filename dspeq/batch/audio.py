@@ -403,7 +403,8 @@ class Spool:
 
     Up to ``budget_bytes`` the samples stay in memory; beyond that they go
     to a raw file (native float32/float64, no header) beside the output,
-    written and read sequentially so that memory stays constant.
+    written and read sequentially so that memory stays constant. The writes
+    run in a thread beside the first pass (a few blocks queued at most).
     """
 
     def __init__(self, frames: int, channels: int, dtype: np.dtype, budget_bytes: int, raw_path: Path):
@@ -413,10 +414,12 @@ class Spool:
         self._raw_path = raw_path
         self._file = None
         self._mem = None
+        self._writer: _BackgroundWriter | None = None
         if frames * channels * self.dtype.itemsize <= budget_bytes:
             self._mem = np.empty((frames, channels), dtype=self.dtype)
         else:
             self._file = open(raw_path, "w+b")  # noqa: SIM115 - closed in close()
+            self._writer = _BackgroundWriter(self._file)
 
     @property
     def on_disk(self) -> bool:
@@ -429,7 +432,7 @@ class Spool:
         if self._mem is not None:
             self._mem[self.frames:self.frames + n] = block
         else:
-            self._file.write(np.ascontiguousarray(block, dtype=self.dtype).data)
+            self._writer.write(np.asarray(block, dtype=self.dtype))
         self.frames += n
 
     def blocks(self, block_frames: int) -> Iterator[np.ndarray]:
@@ -438,6 +441,7 @@ class Spool:
             for start in range(0, self.frames, block_frames):
                 yield self._mem[start:min(start + block_frames, self.frames)]
             return
+        self._writer.finish()
         self._file.flush()
         self._file.seek(0)
         buf = np.empty((int(block_frames), self.channels), dtype=self.dtype)
@@ -448,10 +452,56 @@ class Spool:
 
     def close(self) -> None:
         self._mem = None
+        if self._writer is not None:
+            self._writer.stop()
         if self._file is not None:
             self._file.close()
             self._file = None
             _unlink(self._raw_path)
+
+
+class _BackgroundWriter:
+    """Writes copies of blocks to a file from a thread, so the writes overlap the decoding.
+
+    At most ``depth`` copies wait at any time (the memory it may hold); the
+    file's writes release the GIL. An error of the writer is raised by the
+    next :meth:`write` or by :meth:`finish`.
+    """
+
+    def __init__(self, file, depth: int = 4):
+        import queue
+
+        self._file = file
+        self._queue: queue.Queue = queue.Queue(maxsize=depth)
+        self._error: BaseException | None = None
+        self._thread = threading.Thread(target=self._run, name="dspeq-spool", daemon=True)
+        self._thread.start()
+
+    def write(self, block: np.ndarray) -> None:
+        self._raise()
+        self._queue.put(np.array(block, order="C"))  # a copy: the caller reuses its buffer
+
+    def finish(self) -> None:
+        """Wait until every block is written; raise the writer's error, if any."""
+        self.stop()
+        self._raise()
+
+    def stop(self) -> None:
+        if self._thread.is_alive():
+            self._queue.put(None)
+            self._thread.join()
+
+    def _run(self) -> None:
+        while (block := self._queue.get()) is not None:
+            if self._error is None:
+                try:
+                    self._file.write(memoryview(block).cast("B"))
+                except BaseException as exc:  # noqa: BLE001 - handed to the producer
+                    self._error = exc
+
+    def _raise(self) -> None:
+        if self._error is not None:
+            raise self._error
 
 
 def _unlink(path: str | os.PathLike) -> None:
