@@ -217,6 +217,8 @@ def steps_table(work: Path) -> list[str]:
         "",
         "The steps of `process_task`, run one after the other in one thread and timed each "
         "(in the real run the input's SHA-256 runs in a thread beside the decoding). The "
+        "spool's file writes run in its own thread here as in the real run: its row is the "
+        "copy handed to that thread, and the read row includes waiting for the last writes. The "
         "sample MD5 of FLAC output is the one the encoder computes anyway (read from "
         "STREAMINFO), so it costs nothing.",
         "",
@@ -243,8 +245,8 @@ def steps_table(work: Path) -> list[str]:
                 y = np.empty((BLOCK, 2), np.float32)
                 for block in blocks:
                     filtered = clock("filter (+ peak)", eq.process, block, y[:len(block)])
-                    clock("spool write (raw float32 file)", spool.append, filtered)
-                for block in _timed_blocks(clock, "spool read", spool.blocks(BLOCK)):
+                    clock("spool write (copy to its writer thread)", spool.append, filtered)
+                for block in _timed_blocks(clock, "spool read (after the last writes)", spool.blocks(BLOCK)):
                     pcm = clock("dither + quantize", quant, block)
                     clock("encode (libsndfile)", sink.write_pcm, pcm)
                 spool.close()
