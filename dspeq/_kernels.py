@@ -1172,28 +1172,25 @@ def pcm_bytes(x: np.ndarray, bits: int) -> np.ndarray:
 # --------------------------------------------------------------------------
 
 
-def _peak_loop(x):
-    """Largest magnitude of a 1-D array (NaN if any), four lanes at a time."""
-    m = np.zeros(4)
-    n = x.shape[0]
-    stop = n - n % 4
-    for i in range(0, stop, 4):
-        for lane in range(4):
-            m[lane] = _sticky_max(m[lane], abs(np.float64(x[i + lane])))
-    for i in range(stop, n):
-        m[0] = _sticky_max(m[0], abs(np.float64(x[i])))
-    return _sticky_max(_sticky_max(m[0], m[1]), _sticky_max(m[2], m[3]))
+def _peak_bits(u, magnitude):
+    """Largest ``u & magnitude`` of the integer view ``u`` of a float array.
+
+    Cleared of the sign bit, the bit patterns of IEEE floats sort as their
+    magnitudes do and every NaN sorts above infinity, so one integer maximum
+    is the peak and keeps a NaN; an integer maximum vectorizes, a float one
+    that must keep NaN does not under strict float semantics.
+    """
+    m = magnitude ^ magnitude  # zero of u's type
+    for j in range(u.shape[0]):
+        a = u[j] & magnitude
+        m = a if a > m else m
+    return m
 
 
-def _sticky_max(m, a):
-    """``max(m, a)`` that, once given a NaN, keeps returning NaN."""
-    return a if (a > m or a != a) else m
-
-
-_STICKY_MAX = _Kernel(_sticky_max)
-
-
-_PEAK = _Kernel(_peak_loop, helpers=(_STICKY_MAX,))
+_PEAK = _Kernel(_peak_bits)
+#: Integer view and sign-clearing mask of each float type, for _peak_bits.
+_MAGNITUDE = {np.dtype(np.float32): np.int32(0x7FFFFFFF),
+              np.dtype(np.float64): np.int64(0x7FFFFFFFFFFFFFFF)}
 
 
 def peak_abs(x: np.ndarray) -> float:
@@ -1213,4 +1210,7 @@ def peak_abs(x: np.ndarray) -> float:
         raise ValueError(f"peak_abs needs float32 or float64, got {x.dtype}")
     if x.size == 0:
         return 0.0
-    return float(_PEAK(x.ravel(order="K")))
+    flat = x.ravel(order="K")
+    mask = _MAGNITUDE[flat.dtype]
+    bits = _PEAK(flat.view(mask.dtype), mask)
+    return float(np.asarray(bits, dtype=mask.dtype).view(flat.dtype))

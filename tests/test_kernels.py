@@ -423,7 +423,9 @@ def test_peak_abs_matches_numpy(dtype, n):
     x = np.random.default_rng(n).standard_normal((n, 2)).astype(dtype)
     assert K.peak_abs(x) == (np.abs(x).max() if n else 0.0)
     assert K.peak_abs(x[::2, 1]) == (np.abs(x[::2, 1]).max() if n else 0.0)
-    assert K._PEAK.py_func(x.ravel()) == K.peak_abs(x)  # pure Python == compiled
+    mask = K._MAGNITUDE[x.dtype]
+    flat = x.ravel()
+    assert K._PEAK.py_func(flat.view(mask.dtype), mask) == K._PEAK(flat.view(mask.dtype), mask)
 
 
 def test_peak_abs_nan_and_inf():
@@ -432,7 +434,16 @@ def test_peak_abs_nan_and_inf():
     assert K.peak_abs(x) == np.inf
     x[7] = np.nan
     assert np.isnan(K.peak_abs(x))
-    assert np.isnan(K._PEAK.py_func(x)) and K._PEAK.py_func(x[:5]) == np.inf
+    x[2] = -0.0
+    assert K.peak_abs(x[:4]) == 0.0 and not np.signbit(K.peak_abs(x[:4]))
+    x32 = x.astype(np.float32)
+    assert np.isnan(K.peak_abs(x32)) and K.peak_abs(x32[:5]) == np.inf
+    # the smallest subnormal and the largest finite value keep their exact magnitude
+    for dtype in (np.float32, np.float64):
+        info = np.finfo(dtype)
+        y = np.array([info.smallest_subnormal, -info.smallest_subnormal, 0.0], dtype)
+        assert K.peak_abs(y) == info.smallest_subnormal
+        assert K.peak_abs(np.array([-info.max, 1.0], dtype)) == info.max
     with pytest.raises(ValueError, match="float32 or float64"):
         K.peak_abs(np.zeros(3, np.int16))
 
