@@ -149,8 +149,9 @@ def test_spool_writes_in_order_from_its_thread_and_reports_write_errors(tmp_path
         buf[:len(b)] = b
         spool.append(buf[:len(b)])
     back = np.concatenate([b.copy() for b in spool.blocks(1000)])
+    assert not (tmp_path / "x.spool").exists()     # removed once read, before the output's fsync
     spool.close()
-    assert np.array_equal(back, np.concatenate(blocks)) and not (tmp_path / "x.spool").exists()
+    assert np.array_equal(back, np.concatenate(blocks))
 
     class Full:                            # a disk that fills up after the first write
         calls = 0

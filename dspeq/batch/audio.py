@@ -449,6 +449,9 @@ class Spool:
         frame_bytes = self.channels * self.dtype.itemsize
         while got := self._file.readinto(raw):
             yield buf[:got // frame_bytes]
+        # Gone before the output is synced: the kernel then drops the file's dirty pages
+        # instead of writing them out with the output's journal commit (ext4's ordered mode).
+        self.close()
 
     def close(self) -> None:
         self._mem = None
