@@ -8,7 +8,8 @@ a 10-minute 96 kHz / 24-bit stereo FLAC "flat transfer" (filtered noise and a
 tone around -20 dBFS), 8 copies of it, and a 60-minute one for the memory
 figures. Everything is measured side by side in the same run, in rounds that
 interleave the contenders (the machine may be shared); tables give medians
-and ranges.
+and ranges. Before each timed run, ``os.sync()`` writes out what earlier runs
+left in the page cache, so no run pays for another's writes.
 
 1. Wall time per file, in this process with design and kernels warm:
    bare read + write (int32 blocks of 65536 frames, FLAC 24-bit out) vs
@@ -101,6 +102,15 @@ def run_dspeq(src_dir: Path, out_dir: Path, mode: str) -> None:
         raise RuntimeError(f"dspeq {mode} failed: {result.error}")
 
 
+def settle() -> None:
+    """Write out every file's pending data before a timed run (outside its timing).
+
+    Without it, one contender's unwritten output (or the material just
+    generated) is flushed during the next contender's run and slows its fsync.
+    """
+    os.sync()
+
+
 def timed(func, *args) -> tuple[float, float]:
     """(wall, CPU of this process incl. its threads) of one call."""
     wall, cpu = time.perf_counter(), time.process_time()
@@ -119,8 +129,10 @@ def per_file_table(work: Path, rounds: int) -> list[str]:
         run_dspeq(work / "warm", work / f"out-warm-{mode}", mode)
     results: dict[str, list[tuple[float, float]]] = {"bare": [], "fixed": [], "auto": []}
     for _ in range(rounds):
+        settle()
         results["bare"].append(timed(bare, src, work / "bare.flac"))
         for mode in ("fixed", "auto"):
+            settle()
             results[mode].append(timed(run_dspeq, src_dir, work / f"out-{mode}", mode))
         print("round", {k: round(v[-1][0], 2) for k, v in results.items()}, file=sys.stderr, flush=True)
     bare_wall = [w for w, _ in results["bare"]]
@@ -153,6 +165,7 @@ def cli_table(work: Path, rounds: int) -> list[str]:
     bare_code = (f"import sys; sys.path.insert(0, {str(ROOT / 'benchmarks')!r}); import bench_batch as b; "
                  "from pathlib import Path; b.bare(Path(sys.argv[1]), Path(sys.argv[2]))")
     for _ in range(rounds):
+        settle()
         start = time.perf_counter()
         subprocess.run([sys.executable, "-c", bare_code, str(src), str(work / "bare.flac")], env=env,
                        check=True)
@@ -160,6 +173,7 @@ def cli_table(work: Path, rounds: int) -> list[str]:
         for mode, gain in (("fixed", ["--gain", "0"]), ("auto", [])):
             out = work / f"cli-{mode}"
             shutil.rmtree(out, ignore_errors=True)
+            settle()
             start = time.perf_counter()
             subprocess.run([sys.executable, "-c", code, "batch", str(src_dir), str(out), "--curve", "riaa",
                             *gain, "--workers", "1", "--no-progress"], env=env, check=True,
@@ -227,6 +241,7 @@ def steps_table(work: Path) -> list[str]:
     ]
     spent = {}
     for mode in ("fixed", "auto"):
+        settle()
         clock = Clock()
         out = work / f"steps-{mode}.flac"
         eq = Equalizer(eq_sos, channels=2)
@@ -287,6 +302,7 @@ def scaling_table(work: Path, rounds: int) -> list[str]:
         for workers in (1, 2):
             out = work / f"scale-{workers}"
             shutil.rmtree(out, ignore_errors=True)
+            settle()
             done = subprocess.run([sys.executable, "-c", _SCALING, str(work / "eight"), str(out),
                                    str(workers)], env=env, check=True, capture_output=True, text=True)
             figures = json.loads(done.stdout.strip().splitlines()[-1])
