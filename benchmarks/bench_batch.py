@@ -449,8 +449,9 @@ NOTES = """### Reading these figures
   bare run's soundfile close syncs before. Both runs pay one fsync. The CPU time of the threads
   still counts when all cores are busy (several workers).
 * **Peak-safe.** The first pass keeps the filtered samples (float32, in memory up to the
-  64 MB budget, else in a raw temporary file that the page cache usually keeps), so the input
-  is decoded once; the second pass reads them back and quantizes.
+  64 MB budget, else in a raw temporary file that the page cache usually keeps, written by a
+  thread beside the decoding and removed once read, before the output is synced), so the
+  input is decoded once; the second pass reads them back and quantizes.
 * **Two workers.** A single worker also keeps the second core busy with its hashing threads
   (input SHA-256 beside the decoding, output SHA-256 beside the fsync); two workers cannot
   borrow a core. Each worker is forked from a server that has imported dspeq, numba and
