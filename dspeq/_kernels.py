@@ -579,7 +579,7 @@ def _define(source: str, name: str) -> Callable:
 #         and computes the state at the start of every segment by
 #         superposition: s[k+1] = A^L s[k] + sum_j g[L-1-j] x[k*L + j], with
 #         A^L the cascade's state transition over L samples and g[i] the
-#         state i + 1 samples after a unit impulse (tables of _fast_tables);
+#         state i + 1 samples after a unit impulse (tables of fast_tables);
 # pass 2  runs the recursion on the K segments as K independent lanes of
 #         ``tf``, each from its own start state, so their dependency chains
 #         overlap (and the SLP vectorizer packs them) like independent
@@ -649,7 +649,7 @@ def _fast_pass1_lines(n_state: int) -> list[str]:
     return lines
 
 
-def _fast_pass23_lines(n_sections: int) -> list[str]:
+def _fast_pass2_lines(n_sections: int) -> list[str]:
     """Pass 2: the segments as lanes (input from ``tf``), each lane's output straight into ``out``.
 
     The output goes to ``K`` places ``L`` frames apart (scalar stores):
@@ -704,7 +704,7 @@ def _fast_loop_source(n_sections: int) -> str:
              f"        while frames - start >= {FAST_LANES}:",
              f"            L = min(gt.shape[0], (frames - start) // {FAST_LANES})",
              *["    " + line for line in _fast_pass1_lines(n_state)],
-             *["    " + line for line in _fast_pass23_lines(n_sections)],
+             *["    " + line for line in _fast_pass2_lines(n_sections)],
              "            for s in range(zi.shape[0]):",
              "                for q in range(2):",
              "                    if abs(zi[s, g, q]) < FLUSH_BELOW:",
@@ -881,11 +881,10 @@ def filter_unchecked(
     n = sos.shape[0]
     if tables is not None and uses_fast_loop(n, x.shape[1]):
         finite, peak, done = _fast_loop(n).compiled(sos, tables[0], tables[1], x, out, zi)
-        if done < x.shape[0]:  # fewer than FAST_LANES frames left: the plain loop
-            loop, c0, c1 = _plan(n, 1, "float", False)[0]
-            ok, rest, _ = loop(sos, x[done:], out[done:], zi, c0, c1, _NO_PCM, _NO_KEYS)
+        if done < x.shape[0]:  # fewer than FAST_LANES frames left: the exact loop
+            ok, rest = filter_unchecked(sos, x[done:], zi, out[done:])
             finite, peak = finite and ok, max(peak, rest)
-        return finite, float(np.float32(peak)) if out.dtype == np.float32 else peak
+        return finite, _stored_peak(peak, out.dtype)
     if n > MAX_UNROLLED_SECTIONS:  # rare: runs of 4 sections, in float64, then one cast
         y = _long_cascade(sos, x, zi)
         out[...] = y
@@ -896,7 +895,7 @@ def filter_unchecked(
         finite, peak, _ = loop(sos, x, out, zi, c0, c1, _NO_PCM, _NO_KEYS)
     else:
         finite, peak = _passes(plan, sos, x, out, zi)
-    return finite, float(np.float32(peak)) if out.dtype == np.float32 else peak
+    return finite, _stored_peak(peak, out.dtype)
 
 
 def filter_quantize_unchecked(
@@ -942,7 +941,12 @@ def filter_quantize_unchecked(
     loop, c0, c1 = passes[0]
     finite, peak, clips = loop(sos, x, out, zi, c0, c1, params, _block_keys(state[0], state[1]))
     state[1] += np.uint64(x.size)
-    return finite, clips, float(np.float32(peak)) if x.dtype == np.float32 else peak
+    return finite, clips, _stored_peak(peak, x.dtype)
+
+
+def _stored_peak(peak: float, dtype: np.dtype) -> float:
+    """A loop's float64 peak as the output stores it (rounded once more for float32 output)."""
+    return float(np.float32(peak)) if dtype == np.float32 else peak
 
 
 def _filter_then_quantize(sos, x, zi, out, gain, bits, state, tables=None) -> tuple[bool, int, float]:

@@ -121,7 +121,7 @@ class Equalizer:
     the arithmetic. With ``exact=False`` a mono block is cut into segments
     whose starting states are computed ahead by superposition and which then
     run side by side (:mod:`dspeq._kernels`, "Fast path"): about 1.4 to 1.6
-    times the exact loop's speed at blocks of 4096 and more (3.2 to 3.7 times
+    times the exact loop's speed at blocks of 4096 and more (about 3 to 4 times
     sosfilt at 65536; ``benchmarks/bench_kernel.py``). The state after every block is
     still the ``zi`` of the signal so far (within rounding), so blocks of any
     sizes and both modes can follow each other. Accuracy, measured against

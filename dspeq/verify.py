@@ -73,13 +73,12 @@ def _settle_frames(design) -> int:
 
     For an oversampled design: the inner design's, at the outer rate, plus the FIR chain.
     """
-    from ._zpk import sos2zpk
     from .oversample import is_oversampled
 
     if is_oversampled(design):
         return _settle_frames(design.inner) // design.factor + 2 * design.latency
 
-    r = float(np.max(np.abs(sos2zpk(design.sos)[1]), initial=0.0))
+    r = float(np.max(np.abs(design.zpk[1]), initial=0.0))
     if r <= 0.0:
         return 16
     return int(math.ceil(math.log(_TAIL_RELATIVE) / math.log(r))) + 16

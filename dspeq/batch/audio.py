@@ -432,7 +432,7 @@ class Spool:
         if self._mem is not None:
             self._mem[self.frames:self.frames + n] = block
         else:
-            self._writer.write(np.asarray(block, dtype=self.dtype))
+            self._writer.write(np.array(block, dtype=self.dtype))  # a copy: the caller reuses its buffer
         self.frames += n
 
     def blocks(self, block_frames: int) -> Iterator[np.ndarray]:
@@ -481,8 +481,9 @@ class _BackgroundWriter:
         self._thread.start()
 
     def write(self, block: np.ndarray) -> None:
+        """Queue ``block`` (C-contiguous, not to be changed afterwards) for writing."""
         self._raise()
-        self._queue.put(np.array(block, order="C"))  # a copy: the caller reuses its buffer
+        self._queue.put(block)
 
     def finish(self) -> None:
         """Wait until every block is written; raise the writer's error, if any."""
