@@ -127,6 +127,7 @@ __all__ = [
     "FAST_LANES",
     "FAST_SPAN",
     "fast_tables",
+    "filter_runner",
     "filter_unchecked",
     "pcm_bytes",
     "peak_abs",
@@ -878,24 +879,57 @@ def filter_unchecked(
     peak : float
         Largest magnitude of the output, as stored in ``out``.
     """
-    n = sos.shape[0]
-    if tables is not None and uses_fast_loop(n, x.shape[1]):
-        finite, peak, done = _fast_loop(n).compiled(sos, tables[0], tables[1], x, out, zi)
-        if done < x.shape[0]:  # fewer than FAST_LANES frames left: the exact loop
-            ok, rest = filter_unchecked(sos, x[done:], zi, out[done:])
-            finite, peak = finite and ok, max(peak, rest)
-        return finite, _stored_peak(peak, out.dtype)
+    return filter_runner(sos.shape[0], x.shape[1], tables is not None)(sos, x, zi, out, tables)
+
+
+_RUNNERS: dict[tuple[int, int, bool], Callable] = {}
+
+
+def filter_runner(n_sections: int, channels: int, fast: bool) -> Callable:
+    """:func:`filter_unchecked` for one shape, with its loops looked up once.
+
+    Returns ``run(sos, x, zi, out, tables) -> (finite, peak)``, the same as
+    ``filter_unchecked`` for a cascade of ``n_sections`` and blocks of
+    ``channels`` (``tables`` given exactly when ``fast``). A caller that
+    filters block after block (:class:`dspeq.stream.Equalizer`) keeps it and
+    saves the lookups on every block: on this machine, Python calls cost
+    about 0.2 us each, a block of 4096 mono frames about 12 us.
+    """
+    key = (n_sections, channels, bool(fast))
+    if key not in _RUNNERS:
+        _RUNNERS[key] = _make_runner(*key)
+    return _RUNNERS[key]
+
+
+def _make_runner(n: int, channels: int, fast: bool) -> Callable:
+    if fast and uses_fast_loop(n, channels):
+        loop = _fast_loop(n).compiled
+
+        def run_fast(sos, x, zi, out, tables):
+            finite, peak, done = loop(sos, tables[0], tables[1], x, out, zi)
+            if done < x.shape[0]:  # fewer than FAST_LANES frames left: the exact loop
+                ok, rest = filter_unchecked(sos, x[done:], zi, out[done:])
+                finite, peak = finite and ok, max(peak, rest)
+            return finite, _stored_peak(peak, out.dtype)
+        return run_fast
     if n > MAX_UNROLLED_SECTIONS:  # rare: runs of 4 sections, in float64, then one cast
-        y = _long_cascade(sos, x, zi)
-        out[...] = y
-        return _finite_state(zi), float(peak_abs(out))
-    plan = _plan(n, x.shape[1], "float", False)
+        def run_long(sos, x, zi, out, tables):
+            out[...] = _long_cascade(sos, x, zi)
+            return _finite_state(zi), float(peak_abs(out))
+        return run_long
+    plan = _plan(n, channels, "float", False)
     if len(plan) == 1:  # mono, stereo, multiples of 4 channels: straight to the loop
-        loop, c0, c1 = plan[0]
-        finite, peak, _ = loop(sos, x, out, zi, c0, c1, _NO_PCM, _NO_KEYS)
-    else:
+        (loop, c0, c1), = plan
+
+        def run_one(sos, x, zi, out, tables):
+            finite, peak, _ = loop(sos, x, out, zi, c0, c1, _NO_PCM, _NO_KEYS)
+            return finite, _stored_peak(peak, out.dtype)
+        return run_one
+
+    def run_passes(sos, x, zi, out, tables):
         finite, peak = _passes(plan, sos, x, out, zi)
-    return finite, _stored_peak(peak, out.dtype)
+        return finite, _stored_peak(peak, out.dtype)
+    return run_passes
 
 
 def filter_quantize_unchecked(
@@ -946,7 +980,7 @@ def filter_quantize_unchecked(
 
 def _stored_peak(peak: float, dtype: np.dtype) -> float:
     """A loop's float64 peak as the output stores it (rounded once more for float32 output)."""
-    return float(np.float32(peak)) if dtype == np.float32 else peak
+    return float(np.float32(peak)) if dtype.char == "f" else peak
 
 
 def _filter_then_quantize(sos, x, zi, out, gain, bits, state, tables=None) -> tuple[bool, int, float]:

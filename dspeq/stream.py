@@ -17,7 +17,11 @@ from ._errors import DesignError, DspeqError
 
 __all__ = ["Equalizer", "validate_sos"]
 
-_FLOATS = (np.dtype(np.float32), np.dtype(np.float64))
+_F32, _F64 = np.dtype(np.float32), np.dtype(np.float64)
+_FLOATS = (_F32, _F64)
+# np.may_share_memory without its __array_function__ dispatch (half its cost
+# on a small block); the public function where numpy has no such attribute.
+_may_share_memory = getattr(np.may_share_memory, "_implementation", np.may_share_memory)
 
 
 def validate_sos(sos: Any) -> np.ndarray:
@@ -170,6 +174,7 @@ class Equalizer:
         self._exact = bool(exact)
         fast = not exact and _kernels.uses_fast_loop(self._sos.shape[0], self._channels)
         self._tables = _kernels.fast_tables(self._coefficients) if fast else None
+        self._filter = _kernels.filter_runner(self._sos.shape[0], self._channels, fast)
         self._zi = np.zeros((self._sos.shape[0], self._channels, 2))
         self._peak = 0.0
 
@@ -232,11 +237,11 @@ class Equalizer:
         """
         frames = self._as_frames(block)
         target = self._output_for(block, frames, out)
-        if target is not None and np.may_share_memory(frames, target):
+        if target is not None and _may_share_memory(frames, target):
             self._check_finite(frames)  # the input is about to be overwritten
         result = np.empty_like(frames) if target is None else target
         zi = self._zi.copy()
-        finite, peak = _kernels.filter_unchecked(self._coefficients, frames, zi, result, self._tables)
+        finite, peak = self._filter(self._coefficients, frames, zi, result, self._tables)
         self._commit(frames, zi, finite, peak)
         return result.reshape(np.shape(block)) if out is None else out
 
@@ -312,7 +317,8 @@ class Equalizer:
         """Validate ``block`` and view it as a C-contiguous (frames, channels) array."""
         if not isinstance(block, np.ndarray):
             raise DspeqError(f"block must be a numpy array, got {type(block).__name__}")
-        if block.dtype not in _FLOATS:
+        dtype = block.dtype
+        if dtype is not _F64 and dtype is not _F32 and dtype not in _FLOATS:
             raise DspeqError(
                 f"block must be float32 or float64 audio in native byte order, "
                 f"got dtype {str(block.dtype)!r}; "

@@ -85,6 +85,27 @@ def test_out_may_be_input():
     assert np.array_equal(x, ref)
 
 
+def test_filter_runner_is_made_once_per_shape_and_runs_the_same_loops():
+    # Reference: scipy.signal.sosfilt, bit for bit (exact loops, every kind of plan:
+    # one pass, several channel passes, a cascade longer than the unrolled loops).
+    for n_sections, channels in [(2, 1), (2, 3), (5, 2)]:
+        run = K.filter_runner(n_sections, channels, False)
+        assert run is K.filter_runner(n_sections, channels, False)
+        sos = cascade(n_sections)
+        x = np.random.default_rng(channels).standard_normal((700, channels))
+        zi, y = np.zeros((n_sections, channels, 2)), np.empty_like(x)
+        finite, peak = run(sos, x, zi, y, None)
+        assert finite and peak == np.abs(y).max()
+        assert np.array_equal(y, sosfilt_frames(sos, x))
+    # The fast runner gives filter_unchecked's result with the same tables.
+    tables = K.fast_tables(RIAA_SOS)
+    x = np.random.default_rng(5).standard_normal((1003, 1))
+    got, want = np.empty_like(x), np.empty_like(x)
+    K.filter_runner(2, 1, True)(RIAA_SOS, x, np.zeros((2, 1, 2)), got, tables)
+    K.filter_unchecked(RIAA_SOS, x, np.zeros((2, 1, 2)), want, tables)
+    assert np.array_equal(got, want) and not np.array_equal(got, sosfilt_frames(RIAA_SOS, x))
+
+
 def test_filter_unchecked_reports_nonfinite_state_and_peak():
     for channels in (1, 2):
         x = np.random.default_rng(channels).standard_normal((2500, channels))
