@@ -290,13 +290,15 @@ t = time.perf_counter()
 results = list(run_tasks(tasks, workers=int(sys.argv[3])))
 wall = time.perf_counter() - t
 assert all(r.status == "done" for r in results), [r.error for r in results]
-print(json.dumps({"wall": wall, "audio_s": sum(r.record["duration_s"] for r in results)}))
+print(json.dumps({"wall": wall, "audio_s": sum(r.record["duration_s"] for r in results),
+                  "files_s": sum(r.elapsed_s for r in results)}))
 """
 
 
 def scaling_table(work: Path, rounds: int) -> list[str]:
     env = dict(os.environ, PYTHONPATH=str(ROOT))
     walls: dict[int, list[float]] = {1: [], 2: []}
+    files: dict[int, list[float]] = {1: [], 2: []}  # sums of the files' own wall times
     audio_s = 0.0
     for _ in range(rounds):
         for workers in (1, 2):
@@ -307,6 +309,7 @@ def scaling_table(work: Path, rounds: int) -> list[str]:
                                    str(workers)], env=env, check=True, capture_output=True, text=True)
             figures = json.loads(done.stdout.strip().splitlines()[-1])
             walls[workers].append(figures["wall"])
+            files[workers].append(figures["files_s"])
             audio_s = figures["audio_s"]
             shutil.rmtree(out, ignore_errors=True)
         print("scaling", {k: round(v[-1], 1) for k, v in walls.items()}, file=sys.stderr, flush=True)
@@ -324,6 +327,19 @@ def scaling_table(work: Path, rounds: int) -> list[str]:
         f"| 2 | {spread(walls[2], 1)} | {audio_s / statistics.median(walls[2]):.0f} |",
         "",
         f"Throughput of 2 workers / 1 worker: {spread(speedups)}.",
+        "",
+        "Where the rest goes: the files' own wall times (from the start of `process_task` to its "
+        "end, summed over the files) against the run's wall time; the first file of each worker "
+        "includes loading the kernels. With 1 worker the run is the files one after the other; "
+        "with 2 the difference between the run and half the sum is the pool's start-up (a fresh interpreter "
+        "that imports dspeq, numba and soundfile, then forks the workers) and the uneven end.",
+        "",
+        "| workers | sum of the files' wall times (s) | per file, relative to 1 worker "
+        "| run − sum / workers (s) |",
+        "|---:|---:|---:|---:|",
+        *[f"| {n} | {statistics.median(files[n]):.1f} "
+          f"| {statistics.median(files[n]) / statistics.median(files[1]):.3f} "
+          f"| {statistics.median(walls[n]) - statistics.median(files[n]) / n:.1f} |" for n in (1, 2)],
     ]
 
 
