@@ -452,8 +452,9 @@ NOTES = """### Reading these figures
   channel"). The exact mono loop therefore runs at that latency, about 2x sosfilt's C loop at
   large blocks, however it is written; independent channels overlap their chains (stereo,
   8 channels), and at small blocks sosfilt's per-call overhead dominates. The fast mono path
-  (`exact=False`) breaks the chain with segments run as SIMD lanes and reaches about 3x at
-  large blocks; its lane copies and state superposition are what keep it under 5x here. The
+  (`exact=False`) breaks the chain with segments run as SIMD lanes and reaches about 3-4x at
+  large blocks; its lane copies and state superposition (about 24 micro-operations per
+  sample in all) are what keep it under 5x here. The
   8-channel figures also depend on memory bandwidth (60 s of 8-channel float64 is 370 MB in
   and out).
 * **Fixed gain.** What remains above the codec is essentially the one kernel pass (filter,

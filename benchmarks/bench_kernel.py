@@ -251,6 +251,12 @@ def floor_table(sos: np.ndarray) -> list[str]:
         "this CPU executes 256-bit operations as two 128-bit halves), the state "
         "superposition (2 x sections multiply-adds per sample) and two copies that turn "
         "the segments into lanes and back (strided scalar moves; numba gives no shuffles). "
+        "Counted in the generated assembly, that is about 24 micro-operations per sample "
+        "(the coefficients are reloaded every frame: eight lanes' states and the "
+        "coefficients need more than the 16 vector registers), which this CPU retires at "
+        "about 4 per cycle; 5x at blocks of 65536 would need about 18. Reassociating the "
+        "recursion (a shorter chain, so fewer lanes suffice) made numba's SLP vectorizer "
+        "leave parts of the loop scalar (DEVELOPERS.md lists what was tried). "
         "With 2 and 8 channels those copies cost more than the overlap gains, so they stay "
         "on the exact loops.",
     ]
