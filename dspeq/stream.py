@@ -124,7 +124,7 @@ class Equalizer:
     sample waits for the previous one, and bit-identity forbids reordering
     the arithmetic. With ``exact=False`` a mono block is cut into segments
     whose starting states are computed ahead by superposition and which then
-    run side by side (:mod:`dspeq._kernels`, "Fast path"): about 1.4 to 1.6
+    run side by side (:mod:`dspeq._kernels`, "Fast path"): about 1.3 to 1.7
     times the exact loop's speed at blocks of 4096 and more (about 3 to 4 times
     sosfilt at 65536; ``benchmarks/bench_kernel.py``). The state after every block is
     still the ``zi`` of the signal so far (within rounding), so blocks of any
