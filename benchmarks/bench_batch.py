@@ -453,13 +453,12 @@ NOTES = """### Reading these figures
 * **Filter kernel.** The recursion of a biquad is a chain of one multiply and three additions
   per sample that bit-identity with `sosfilt` forbids reordering (see "What limits a single
   channel"). The exact mono loop therefore runs at that latency, about 2x sosfilt's C loop at
-  large blocks, however it is written; independent channels overlap their chains (stereo,
-  8 channels), and at small blocks sosfilt's per-call overhead dominates. The fast mono path
-  (`exact=False`) breaks the chain with segments run as SIMD lanes and reaches about 3-4x at
-  large blocks; its lane copies and state superposition (about 24 micro-operations per
-  sample in all) are what keep it under 5x here. The
+  large blocks, however it is written, and stereo at about 4x; eight channels fill the SIMD
+  lanes, and at small blocks sosfilt's per-call overhead dominates. The fast path
+  (`exact=False`, mono and stereo) breaks the chain with segments run as SIMD lanes; at large
+  blocks it is bound by memory traffic and its copies into and out of the lanes. The
   8-channel figures also depend on memory bandwidth (60 s of 8-channel float64 is 370 MB in
-  and out).
+  and out). This machine is shared: medians move by 10-30 % from run to run.
 * **Fixed gain.** What remains above the codec is essentially the one kernel pass (filter,
   TPDF dither, rounding, clip count and peak, 5–6 ns per sample, about a tenth of the codec's
   cost). The hashes add little wall time: the input's SHA-256 runs in a thread while the file

@@ -19,14 +19,17 @@ Speed
 The recursion is a dependency chain: each sample of a section needs the
 previous one through a multiply and three additions, about 13 cycles on
 current x86 cores, whatever the code around it. A single channel therefore
-runs at that latency (about 2.4x :func:`scipy.signal.sosfilt`, whose C loop
+runs at that latency (about 2x :func:`scipy.signal.sosfilt`, whose C loop
 adds its own overhead to the same chain; "Fast path" below trades
 bit-identity for a way around it). Independent channels are where
 the speed comes from: the generated loops hold every coefficient and state
 in local variables and process up to :data:`GROUP_LANES` channels in the
 same iteration, so their chains overlap, and they are compiled with LLVM's
 SLP vectorizer on, which packs the channels of a group into SIMD registers
-(lane-wise IEEE operations, so the results are unchanged). Indices are
+(lane-wise IEEE operations, so the results are unchanged). The one-channel
+loop is compiled without it: there the vectorizer packs the statements of
+different sections into one register, which chains the sections'
+recursions together (measured: twice the time of the scalar loop). Indices are
 unsigned so that no negative-index wraparound code sits in the loop. Frames
 are processed in chunks of :data:`FLUSH_EVERY`, every group of a chunk
 before the next chunk, which keeps the data in the L1/L2 cache for any
@@ -61,14 +64,14 @@ bit-identical to ``sosfilt``; on a decaying tail the output differs from
 
 Fast path
 ---------
-For one channel the exact loop cannot go faster than the chain, so
-:func:`filter_unchecked` given :func:`fast_tables` runs another loop
-(``Equalizer(..., exact=False)``): each chunk of ``FAST_LANES * L`` frames
-(``L <= FAST_SPAN``) is cut into FAST_LANES segments, the state at the
+For one or two channels the exact loop cannot go faster than the chain,
+so :func:`filter_unchecked` given :func:`fast_tables` runs another loop
+(``Equalizer(..., exact=False)``): each chunk of ``K * L`` frames (``K =
+FAST_LANES // channels``, ``L <= FAST_SPAN``) is cut into K segments, the state at the
 start of every segment is computed ahead by superposition (the chunk's
 state carried over ``L`` silent samples plus the state the segment's input
 leaves from zero, both from tables), and the segments then run the
-ordinary recursion side by side as SIMD lanes, each from its own start
+ordinary recursion side by side as SIMD lanes (segments x channels), each from its own start
 state. The only loop-carried work left is one small matrix-vector product
 per segment. It is not bit-identical to sosfilt: the start states are
 rounded in another order. The tables are computed in extended precision
@@ -76,8 +79,8 @@ and held in coordinates that stay well conditioned for poles near z = 1
 (see :func:`fast_tables`); with them the error against the recursion in
 extended precision is no larger than sosfilt's own (tests/test_fastpath.py).
 The state is flushed (see "Denormal numbers") after every chunk.
-Independent channels already overlap their chains in the exact loops, so
-the fast loop serves mono only.
+Eight and more channels already fill the SIMD lanes of the exact loops, so
+the fast loop serves mono and stereo only (:data:`FAST_CHANNELS`).
 
 Dither
 ------
@@ -126,6 +129,7 @@ __all__ = [
     "filter_quantize_unchecked",
     "FAST_LANES",
     "FAST_SPAN",
+    "FAST_CHANNELS",
     "fast_tables",
     "filter_runner",
     "filter_unchecked",
@@ -534,7 +538,10 @@ def _sos_loop(n_sections: int, lanes: int, stage: str = "float", round32: bool =
         return _SOS_LOOPS[key]
     with _COMPILE_LOCK:
         if key not in _SOS_LOOPS:
-            _SOS_LOOPS[key] = _Kernel(_build_sos_loop(*key), helpers=(_TPDF_AT,), slp=True)
+            # One lane: the SLP vectorizer would pack the sections' statements
+            # into one register, which chains the sections' recursions
+            # together (measured: twice the time of the scalar loop).
+            _SOS_LOOPS[key] = _Kernel(_build_sos_loop(*key), helpers=(_TPDF_AT,), slp=lanes > 1)
     return _SOS_LOOPS[key]
 
 
@@ -558,10 +565,10 @@ def _build_sos_loop(n_sections: int, lanes: int, stage: str, round32: bool) -> C
     return _define(source, _sos_loop_name(n_sections, lanes, stage, round32))
 
 
-def _define(source: str, name: str) -> Callable:
-    """Define the generated function ``name`` from ``source``."""
+def _define(source: str, name: str, names: dict | None = None) -> Callable:
+    """Define the generated function ``name`` from ``source`` (``names``: more globals it calls)."""
     namespace = {"np": np, "FLUSH_EVERY": FLUSH_EVERY, "FLUSH_BELOW": FLUSH_BELOW,
-                 "_U32": _U32, "_tpdf_at": _tpdf_at, **_LANE_CONSTANTS}
+                 "_U32": _U32, "_tpdf_at": _tpdf_at, **_LANE_CONSTANTS, **(names or {})}
     # Compiled under this file's name so numba's disk cache follows this file.
     exec(compile(source, __file__, "exec"), namespace)  # noqa: S102 - generated here
     func = namespace[name]
@@ -573,29 +580,36 @@ def _define(source: str, name: str) -> Callable:
 # Fast path: segments of a chunk as parallel lanes (not bit-identical)
 # --------------------------------------------------------------------------
 #
-# For a mono block, a chunk of K * L frames (K = FAST_LANES, L <=
-# FAST_SPAN) is cut into K segments of L frames:
+# For a block of C = 1 or 2 channels, a chunk of K * L frames (K =
+# FAST_LANES // C segments, L <= FAST_SPAN) is cut into K segments of L
+# frames; lane l = k * C + c is channel c of segment k, FAST_LANES lanes in
+# all. Each chunk takes three compiled passes, each a plain loop that LLVM
+# turns into SIMD code on its own (one loop per pass proved steadier than
+# one loop doing everything: the SLP vectorizer packs small loops well and
+# large ones badly):
 #
-# pass 1  copies the chunk into ``tf`` (frame j of segment k at j * K + k)
-#         and computes the state at the start of every segment by
-#         superposition: s[k+1] = A^L s[k] + sum_j g[L-1-j] x[k*L + j], with
-#         A^L the cascade's state transition over L samples and g[i] the
-#         state i + 1 samples after a unit impulse (tables of fast_tables);
-# pass 2  runs the recursion on the K segments as K independent lanes of
-#         ``tf``, each from its own start state, so their dependency chains
-#         overlap (and the SLP vectorizer packs them) like independent
-#         channels, and writes each lane's output straight to its segment
-#         of ``out``; lane K-1 ends with the state of the chunk.
+# in     copies the chunk into ``tf``, frame j of lane l at j * FAST_LANES + l;
+# sums   computes, for every lane, the state its input leaves from zero
+#        state, F[n, l] = sum_j g[L-1-j, n] tf[j * FAST_LANES + l], with g[i]
+#        the state i + 1 samples after a unit impulse (vectorized across the
+#        lanes); the driver then chains the segments' start states,
+#        s[k+1] = s[k] + (dt[L] s[k] + F[:, k]) (tables of fast_tables);
+# lanes  runs the recursion on all lanes side by side from their start
+#        states, so their dependency chains overlap like independent
+#        channels, and writes each lane's output straight to its place in
+#        ``out``; the last segment ends with the state of the chunk.
 #
 # Frames left over (fewer than K) run the plain recursion. The result
 # differs from sosfilt's only by rounding: the start states of segments
 # 1..K-1 are computed in another order of operations (tests/test_fastpath.py
 # bounds the difference).
 
-#: Segments (lanes) of a chunk in the fast loop.
+#: SIMD lanes of the fast loop: segments x channels (8 float64 = one 512-bit register).
 FAST_LANES = 8
 #: Longest segment of the fast loop (frames); the tables cover this many steps.
 FAST_SPAN = 256
+#: Channel counts the fast loop serves.
+FAST_CHANNELS = (1, 2)
 
 
 def _tree(terms: list[str]) -> str:
@@ -606,131 +620,174 @@ def _tree(terms: list[str]) -> str:
     return terms[0]
 
 
-def _fast_pass1_lines(n_state: int) -> list[str]:
-    """Pass 1: segments into ``tf``, start states of segments 1..K-1 into ``S``.
+def _fast_in_source(channels: int) -> tuple[str, str]:
+    """Pass "in": ``(x, tf, start, L, nl)``, the chunk from ``start`` into ``tf``.
 
-    The state is carried in the coordinates of :func:`fast_tables`
-    (``u = (z0, z0 + z1)`` per section) and stored for the lanes in the
-    ``zi`` layout (``z1 = u1 - u0``).
+    ``nl`` is FAST_LANES passed at run time: with a constant stride LLVM
+    turns the loop into scatter instructions, which are slower here.
     """
-    ind = " " * 12
-    acc = [f"f{n}_{u}" for n in range(n_state) for u in range(4)]
-    lines = [*[f"    s{n} = zi[{n // 2}, 0, 0]" for n in range(0, n_state, 2)],
-             *[f"    s{n} = zi[{n // 2}, 0, 0] + zi[{n // 2}, 0, 1]" for n in range(1, n_state, 2)],
-             f"    for k in range({FAST_LANES - 1}):",
-             "        i = np.uint64(start + k * L)",
-             "        t = np.uint64(k)",
-             f"        {' = '.join(acc)} = 0.0",
-             f"        r = np.uint64(L * {n_state})",
-             "        j = 0",
-             "        while j + 4 <= L:"]
-    for u in range(4):  # four partial sums per state: four independent chains
-        lines += [f"{ind}r -= U{n_state}", f"{ind}x{u} = np.float64(xf[i])", f"{ind}tf[t] = x{u}",
-                  f"{ind}i += U1", f"{ind}t += nl"]
-        lines += [f"{ind}f{n}_{u} += gf[r + U{n}] * x{u}" for n in range(n_state)]
-    lines += [f"{ind}j += 4",
-              "        while j < L:",
-              f"{ind}r -= U{n_state}", f"{ind}x0 = np.float64(xf[i])", f"{ind}tf[t] = x0",
-              f"{ind}i += U1", f"{ind}t += nl",
-              *[f"{ind}f{n}_0 += gf[r + U{n}] * x0" for n in range(n_state)],
-              f"{ind}j += 1"]
-    ind = " " * 8
+    name = f"_fast_in_{channels}ch_{FAST_LANES}lanes"
+    source = f"""
+def {name}(x, tf, start, L, nl):
+    xf = x.reshape(-1)
+    for lane in range({FAST_LANES}):
+        i = np.uint64((start + (lane // {channels}) * L) * {channels} + lane % {channels})
+        t = np.uint64(lane)
+        for _ in range(L):
+            tf[t] = np.float64(xf[i])
+            i += U{channels}
+            t += nl
+"""
+    return name, source
+
+
+def _fast_sums_source(n_state: int) -> tuple[str, str]:
+    """Pass "sums": ``(tf, gt, L, F)``, every lane's state from zero state into ``F``."""
+    name = f"_fast_sums_{n_state}states_{FAST_LANES}lanes"
+    lanes = range(FAST_LANES)
+    lines = [f"def {name}(tf, gt, L, F):",
+             "    " + " = ".join(f"f{n}_{k}" for n in range(n_state) for k in lanes) + " = 0.0",
+             "    t = np.uint64(0)",
+             "    for j in range(L):",
+             *[f"        g{n} = gt[L - 1 - j, {n}]" for n in range(n_state)],
+             *[f"        v{k} = tf[t + U{k}]" for k in lanes]]
     for n in range(n_state):
-        lines.append(f"{ind}t{n} = s{n} + (((f{n}_0 + f{n}_1) + (f{n}_2 + f{n}_3)) + "
-                     + _tree([f"dt[L, {n}, {m}] * s{m}" for m in range(n_state)]) + ")")
-    lines += [f"{ind}s{n} = t{n}" for n in range(n_state)]
-    lines += [f"{ind}S[k + 1, {n}] = s{n}" if n % 2 == 0 else f"{ind}S[k + 1, {n}] = s{n} - s{n - 1}"
-              for n in range(n_state)]
-    lines += [f"    i = np.uint64(start + {FAST_LANES - 1} * L)",
-              f"    t = U{FAST_LANES - 1}",
-              "    for _ in range(L):",
-              "        tf[t] = np.float64(xf[i])",
-              "        i += U1",
-              "        t += nl"]
-    return lines
+        lines += [f"        f{n}_{k} += g{n} * v{k}" for k in lanes]
+    lines += [f"        t += U{FAST_LANES}"]
+    lines += [f"    F[{n}, {k}] = f{n}_{k}" for n in range(n_state) for k in lanes]
+    return name, "\n".join(lines) + "\n"
 
 
-def _fast_pass2_lines(n_sections: int) -> list[str]:
-    """Pass 2: the segments as lanes (input from ``tf``), each lane's output straight into ``out``.
+def _fast_lanes_source(n_sections: int, channels: int) -> tuple[str, str]:
+    """Pass "lanes": ``(sos, tf, out, start, L, Z, pk)``, the recursion on all lanes.
 
-    The output goes to ``K`` places ``L`` frames apart (scalar stores):
-    cheaper than storing the lanes in ``tf`` and copying them back in a
-    third pass (measured: about 0.3 ns per sample less, data in cache).
-    Reading the input the same way instead of from ``tf`` was slower.
+    ``Z`` (n_sections, 2, FAST_LANES) holds each lane's start state in the
+    ``zi`` layout and receives its end state; ``pk`` the lanes' peaks.
     """
+    name = f"_fast_lanes_{n_sections}s_{channels}ch_{FAST_LANES}lanes"
     lanes, ind = range(FAST_LANES), " " * 8
-    lines = [f"    z{q}_{s}_{k} = " + (f"zi[{s}, 0, {q}]" if k == 0 else f"S[{k}, {2 * s + q}]")
-             for s in range(n_sections) for q in (0, 1) for k in lanes]
-    lines += ["    span = np.uint64(L)",
-              *[f"    o{k} = U{k} * span" for k in lanes],
-              "    i = np.uint64(start)",
-              "    t = np.uint64(0)", "    for _ in range(L):"]
-    lines += [f"{ind}v{k} = tf[t + U{k}]" for k in lanes]
-    lines += _section_lines(n_sections, FAST_LANES, ind)
-    lines += [f"{ind}a{k} = abs(v{k})" for k in lanes]
-    lines += [f"{ind}pk{k} = a{k} if a{k} > pk{k} else pk{k}" for k in lanes]
-    lines += [f"{ind}of[i + o{k}] = v{k}" for k in lanes]
-    lines += [f"{ind}t += nl", f"{ind}i += U1"]
-    last = FAST_LANES - 1
-    lines += [f"    zi[{s}, 0, {q}] = z{q}_{s}_{last}" for s in range(n_sections) for q in (0, 1)]
-    return lines
-
-
-def _fast_loop_name(n_sections: int) -> str:
-    return f"_fast_loop_{n_sections}s_{FAST_LANES}lanes_{FAST_SPAN}span_mono"
-
-
-def _fast_loop_source(n_sections: int) -> str:
-    """Source of ``_fast_loop_name(n)(sos, gt, dt, x, out, zi)`` -> (finite, peak, frames done).
-
-    For mono blocks only (``x`` of shape (frames, 1); see :func:`uses_fast_loop`).
-    The frames left over (fewer than FAST_LANES) are the caller's: the plain
-    loop in the same function would share variables with the lanes and
-    slow them down (measured: a third).
-    """
-    n_state = 2 * n_sections
-    lines = [f"def {_fast_loop_name(n_sections)}(sos, gt, dt, x, out, zi):",
-             *_coefficient_lines(n_sections),
-             "    frames = x.shape[0]",
-             "    xf = x.reshape(-1)",
+    lines = [f"def {name}(sos, tf, out, start, L, Z, pk):", *_coefficient_lines(n_sections),
              "    of = out.reshape(-1)",
-             "    gf = gt.reshape(-1)",
-             f"    S = np.empty(({FAST_LANES}, {n_state}))",
+             *[f"    z{q}_{s}_{k} = Z[{s}, {q}, {k}]" for s in range(n_sections) for q in (0, 1)
+               for k in lanes],
+             *[f"    pk{k} = pk[{k}]" for k in lanes],
+             *[f"    o{k} = np.uint64(({k // channels} * L + start) * {channels} + {k % channels})"
+               for k in lanes],
+             "    t = np.uint64(0)",
+             "    i = np.uint64(0)",
+             "    for _ in range(L):",
+             *[f"{ind}v{k} = tf[t + U{k}]" for k in lanes],
+             *_section_lines(n_sections, FAST_LANES, ind),
+             *[f"{ind}a{k} = abs(v{k})" for k in lanes],
+             *[f"{ind}pk{k} = a{k} if a{k} > pk{k} else pk{k}" for k in lanes],
+             *[f"{ind}of[i + o{k}] = v{k}" for k in lanes],
+             f"{ind}t += U{FAST_LANES}",
+             f"{ind}i += U{channels}",
+             *[f"    Z[{s}, {q}, {k}] = z{q}_{s}_{k}" for s in range(n_sections) for q in (0, 1)
+               for k in lanes],
+             *[f"    pk[{k}] = pk{k}" for k in lanes]]
+    return name, "\n".join(lines) + "\n"
+
+
+def _fast_chain(zi, F, dt, L, Z, channels):
+    """The driver's step between "sums" and "lanes": every lane's start state into ``Z``.
+
+    The state is carried in the coordinates of :func:`fast_tables` (``u =
+    (z0, z0 + z1)`` per section) from segment to segment, ``s[k+1] = s[k] +
+    (F[:, lane] + dt[L] s[k])``, and stored for the lanes in the ``zi``
+    layout (``z1 = u1 - u0``). A loop, not generated code: it runs once per
+    chunk, and unrolled it took LLVM many seconds to compile.
+    """
+    n_sections = zi.shape[0]
+    n_state = 2 * n_sections
+    s = np.empty(n_state)
+    t = np.empty(n_state)
+    for c in range(channels):
+        for sec in range(n_sections):
+            s[2 * sec] = zi[sec, c, 0]
+            s[2 * sec + 1] = zi[sec, c, 0] + zi[sec, c, 1]
+            Z[sec, 0, c] = zi[sec, c, 0]
+            Z[sec, 1, c] = zi[sec, c, 1]
+        for lane in range(c, Z.shape[2] - channels, channels):
+            for n in range(n_state):
+                acc = 0.0
+                for m in range(n_state):
+                    acc += dt[L, n, m] * s[m]
+                t[n] = s[n] + (F[n, lane] + acc)
+            for sec in range(n_sections):
+                s[2 * sec], s[2 * sec + 1] = t[2 * sec], t[2 * sec + 1]
+                Z[sec, 0, lane + channels] = s[2 * sec]
+                Z[sec, 1, lane + channels] = s[2 * sec + 1] - s[2 * sec]
+
+
+_FAST_CHAIN = _Kernel(_fast_chain)
+
+
+def _fast_loop_name(n_sections: int, channels: int) -> str:
+    return f"_fast_loop_{n_sections}s_{channels}ch_{FAST_LANES}lanes_{FAST_SPAN}span"
+
+
+def _fast_loop_source(n_sections: int, channels: int, helpers: tuple[str, str, str]) -> str:
+    """Source of ``_fast_loop_name(n, channels)(sos, gt, dt, x, out, zi)`` -> (finite, peak, frames done).
+
+    For blocks of ``channels`` (1 or 2; see :func:`uses_fast_loop`). The
+    frames left over (fewer than FAST_LANES // channels) are the caller's.
+    """
+    pass_in, pass_sums, pass_lanes = helpers
+    segments, ind = FAST_LANES // channels, " " * 8
+    last = [(s, c, q, (segments - 1) * channels + c)
+            for s in range(n_sections) for c in range(channels) for q in (0, 1)]
+    lines = [f"def {_fast_loop_name(n_sections, channels)}(sos, gt, dt, x, out, zi):",
+             "    frames = x.shape[0]",
              f"    tf = np.empty(gt.shape[0] * {FAST_LANES})",
              "    nl = np.uint64(tf.shape[0] // gt.shape[0])  # the lane count, at run time",
-             *[f"    pk{k} = 0.0" for k in range(FAST_LANES)],
+             f"    F = np.empty(({2 * n_sections}, {FAST_LANES}))",
+             f"    Z = np.empty(({n_sections}, 2, {FAST_LANES}))",
+             f"    pk = np.zeros({FAST_LANES})",
              "    start = 0",
-             f"    while frames - start >= {FAST_LANES}:",
-             f"        L = min(gt.shape[0], (frames - start) // {FAST_LANES})",
-             *["    " + line for line in _fast_pass1_lines(n_state)],
-             *["    " + line for line in _fast_pass2_lines(n_sections)],
+             f"    while frames - start >= {segments}:",
+             f"        L = min(gt.shape[0], (frames - start) // {segments})",
+             f"        {pass_in}(x, tf, start, L, nl)",
+             f"        {pass_sums}(tf, gt, L, F)",
+             f"        _fast_chain(zi, F, dt, L, Z, {channels})",
+             f"        {pass_lanes}(sos, tf, out, start, L, Z, pk)",
+             *[f"{ind}zi[{s}, {c}, {q}] = Z[{s}, {q}, {lane}]" for s, c, q, lane in last],
              "        for s in range(zi.shape[0]):",
-             "            for q in range(2):",
-             "                if abs(zi[s, 0, q]) < FLUSH_BELOW:",
-             "                    zi[s, 0, q] = 0.0",
-             f"        start += {FAST_LANES} * L",
+             f"            for c in range({channels}):",
+             "                for q in range(2):",
+             "                    if abs(zi[s, c, q]) < FLUSH_BELOW:",
+             "                        zi[s, c, q] = 0.0",
+             f"        start += {segments} * L",
              "    peak = 0.0",
-             *[f"    peak = pk{k} if pk{k} > peak else peak" for k in range(FAST_LANES)],
+             f"    for k in range({FAST_LANES}):",
+             "        peak = pk[k] if pk[k] > peak else peak",
              "    finite = 0.0",
              "    for s in range(zi.shape[0]):",
-             "        finite += 0.0 * (zi[s, 0, 0] + zi[s, 0, 1])",
+             f"        for c in range({channels}):",
+             "            finite += 0.0 * (zi[s, c, 0] + zi[s, c, 1])",
              "    return finite == 0.0, peak, start"]
     return "\n".join(lines) + "\n"
 
 
-_FAST_LOOPS: dict[int, _Kernel] = {}
+_FAST_LOOPS: dict[tuple[int, int], _Kernel] = {}
 
 
-def _fast_loop(n_sections: int) -> _Kernel:
-    """The (lazily compiled) fast loop for a cascade length (1 .. MAX_UNROLLED_SECTIONS)."""
-    if n_sections in _FAST_LOOPS:  # without the lock: this is on every block's path
-        return _FAST_LOOPS[n_sections]
+def _fast_loop(n_sections: int, channels: int = 1) -> _Kernel:
+    """The (lazily compiled) fast loop for a cascade (1 .. MAX_UNROLLED_SECTIONS), 1 or 2 channels."""
+    key = (n_sections, channels)
+    if key in _FAST_LOOPS:  # without the lock: this is on every block's path
+        return _FAST_LOOPS[key]
     with _COMPILE_LOCK:
-        if n_sections not in _FAST_LOOPS:
-            source = _fast_loop_source(n_sections)
-            _FAST_LOOPS[n_sections] = _Kernel(
-                _define(source, _fast_loop_name(n_sections)), slp=True)
-    return _FAST_LOOPS[n_sections]
+        if key not in _FAST_LOOPS:
+            passes = tuple(_Kernel(_define(source, name), slp=True) for name, source in (
+                _fast_in_source(channels), _fast_sums_source(2 * n_sections),
+                _fast_lanes_source(n_sections, channels)))
+            names = tuple(p.py_func.__name__ for p in passes)
+            driver = _define(_fast_loop_source(n_sections, channels, names),
+                             _fast_loop_name(n_sections, channels),
+                             {p.py_func.__name__: p.py_func for p in (*passes, _FAST_CHAIN)})
+            _FAST_LOOPS[key] = _Kernel(driver, helpers=(*passes, _FAST_CHAIN), slp=True)
+    return _FAST_LOOPS[key]
 
 
 def fast_tables(sos: np.ndarray, span: int = FAST_SPAN) -> tuple[np.ndarray, np.ndarray]:
@@ -861,8 +918,8 @@ def filter_unchecked(
 ) -> tuple[bool, float]:
     """:func:`sos_filter` without argument checks.
 
-    With ``tables`` (from :func:`fast_tables` for this ``sos``), a mono
-    block of a cascade of at most :data:`MAX_UNROLLED_SECTIONS` sections
+    With ``tables`` (from :func:`fast_tables` for this ``sos``), a mono or
+    stereo block of a cascade of at most :data:`MAX_UNROLLED_SECTIONS` sections
     runs the fast loop (see "Fast path" in the module docstring): not
     bit-identical to :func:`scipy.signal.sosfilt`, within rounding of it.
     Other blocks take the exact loops whatever ``tables`` is.
@@ -900,7 +957,7 @@ def filter_runner(n_sections: int, channels: int, fast: bool) -> Callable:
 
 def _make_runner(n: int, channels: int, fast: bool) -> Callable:
     if fast and uses_fast_loop(n, channels):
-        loop = _fast_loop(n).compiled
+        loop = _fast_loop(n, channels).compiled
 
         def run_fast(sos, x, zi, out, tables):
             finite, peak, done = loop(sos, tables[0], tables[1], x, out, zi)
@@ -1003,12 +1060,12 @@ def _pieces(sos, x, zi, out, gain, bits, state, pieces) -> tuple[bool, int, floa
 def uses_fast_loop(n_sections: int, channels: int) -> bool:
     """Whether :func:`filter_unchecked` given tables runs the fast loop for this shape.
 
-    Mono only: independent channels already overlap their dependency chains
-    in the exact loops, where the fast loop's extra passes cost more than
-    they gain (measured while it was written: stereo, 2 sections, data in
-    cache, about 4.8 ns per sample against the exact loop's 2.8).
+    Mono and stereo (:data:`FAST_CHANNELS`): their few independent chains
+    cannot fill the SIMD lanes of the exact loops. Eight and more channels
+    already overlap enough chains there (about 15x sosfilt), and the exact
+    loops are bit-identical.
     """
-    return channels == 1 and n_sections <= MAX_UNROLLED_SECTIONS
+    return channels in FAST_CHANNELS and n_sections <= MAX_UNROLLED_SECTIONS
 
 
 def _passes(plan: tuple, sos: np.ndarray, x: np.ndarray, out: np.ndarray, zi: np.ndarray

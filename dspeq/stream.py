@@ -3,7 +3,7 @@
 The recursion is :func:`scipy.signal.sosfilt`'s (Direct Form II transposed)
 and the float64 output is bit-identical to it; the loop itself lives in
 :mod:`dspeq._kernels`. ``Equalizer(..., exact=False)`` trades bit-identity for
-speed on mono signals (see :class:`Equalizer`).
+speed on mono and stereo signals (see :class:`Equalizer`).
 """
 
 from __future__ import annotations
@@ -94,9 +94,9 @@ class Equalizer:
         Number of channels of every block (default 1).
     exact : bool, optional
         True (the default): the output is bit-identical to
-        :func:`scipy.signal.sosfilt`. False: mono cascades of up to four
-        sections run a faster loop (below) whose output differs from
-        sosfilt's by rounding only; other shapes are exact either way.
+        :func:`scipy.signal.sosfilt`. False: mono and stereo cascades of up
+        to four sections run a faster loop (below) whose output differs
+        from sosfilt's by rounding only; other shapes are exact either way.
 
     Attributes
     ----------
@@ -120,14 +120,15 @@ class Equalizer:
     1e-200 are flushed to zero (see :mod:`dspeq._kernels`), which changes
     decaying tails by less than -300 dBFS and keeps them fast.
 
-    A single channel is bound by the recursion's dependency chain: every
-    sample waits for the previous one, and bit-identity forbids reordering
-    the arithmetic. With ``exact=False`` a mono block is cut into segments
-    whose starting states are computed ahead by superposition and which then
-    run side by side (:mod:`dspeq._kernels`, "Fast path"): about 1.3 to 1.7
-    times the exact loop's speed at blocks of 4096 and more (about 3 to 4 times
-    sosfilt at 65536; ``benchmarks/bench_kernel.py``). The state after every block is
-    still the ``zi`` of the signal so far (within rounding), so blocks of any
+    One or two channels are bound by the recursion's dependency chain:
+    every sample waits for the previous one, and bit-identity forbids
+    reordering the arithmetic. With ``exact=False`` a mono or stereo block is
+    cut into segments whose starting states are computed ahead by
+    superposition and which then run side by side as SIMD lanes
+    (:mod:`dspeq._kernels`, "Fast path"); ``benchmarks/bench_kernel.py``
+    measures both modes against sosfilt (``docs/performance.md``). The state
+    after every block is still the ``zi`` of the signal so far (within
+    rounding), so blocks of any
     sizes and both modes can follow each other. Accuracy, measured against
     the same recursion in extended precision (``tests/test_fastpath.py``):
     the fast path's error is no larger than sosfilt's own (about 1e-14 of the

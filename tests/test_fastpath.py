@@ -44,7 +44,7 @@ def random_sos(rng, n_sections, max_radius=0.99):
 
 def extended(sos, x):
     """The same recursion (DF2T) in np.longdouble: scipy's sosfilt supports that dtype."""
-    return signal.sosfilt(sos.astype(np.longdouble), np.asarray(x, np.longdouble))
+    return signal.sosfilt(sos.astype(np.longdouble), np.asarray(x, np.longdouble), axis=0)
 
 
 def run(eq, x, sizes):
@@ -71,14 +71,17 @@ needs_long_double = pytest.mark.skipif(
 
 @pytest.mark.parametrize("n_sections", [1, 2, 3, 4])
 @pytest.mark.parametrize("dtype", [np.float64, np.float32])
-def test_mono_within_1e12_of_sosfilt(n_sections, dtype):
-    rng = np.random.default_rng(10 * n_sections + (dtype == np.float32))
+@pytest.mark.parametrize("channels", [1, 2])
+def test_mono_and_stereo_within_1e12_of_sosfilt(n_sections, dtype, channels):
+    rng = np.random.default_rng(10 * n_sections + (dtype == np.float32) + 100 * channels)
     sos = random_sos(rng, n_sections)
-    x = rng.standard_normal(20000).astype(dtype)
+    x = rng.standard_normal((20000, channels)).astype(dtype)
     # Random partition, with blocks shorter than the lane count and longer than a chunk.
     sizes = [int(s) for s in rng.integers(1, 3000, 12)] + [3, 5000]
-    y = run(Equalizer(sos, exact=False), x, sizes)
-    ref = signal.sosfilt(sos, x.astype(np.float64))
+    eq = Equalizer(sos, channels, exact=False)
+    y = run(eq, x, sizes)
+    ref, zf = signal.sosfilt(sos, x.astype(np.float64), axis=0,
+                             zi=np.zeros((n_sections, 2, channels)))
     assert y.dtype == dtype
     if dtype == np.float64:
         assert relative(y, ref) <= 1e-12
@@ -86,11 +89,24 @@ def test_mono_within_1e12_of_sosfilt(n_sections, dtype):
     else:  # float32: the float64 result rounded once; within one float32 step of sosfilt's
         ref32 = ref.astype(np.float32)
         assert np.all(np.abs(y - ref32) <= np.spacing(np.abs(ref32)))
+    # Each channel's final state is sosfilt's, within rounding.
+    assert np.max(np.abs(eq.state - zf.transpose(0, 2, 1))) <= 1e-12 * np.max(np.abs(zf))
 
 
-@pytest.mark.parametrize("channels", [2, 8])
-def test_several_channels_stay_exact(channels):
-    # The fast loop is for mono only; other shapes take the exact loops.
+def test_stereo_channels_do_not_mix():
+    # Stereo lanes interleave the two channels; each must see only its own input.
+    rng = np.random.default_rng(12)
+    sos = random_sos(rng, 2)
+    x = np.zeros((9000, 2))
+    x[:, 0] = rng.standard_normal(9000)
+    y = Equalizer(sos, 2, exact=False).process(x)
+    assert not y[:, 1].any()
+    assert relative(y[:, 0], signal.sosfilt(sos, x[:, 0])) <= 1e-12
+
+
+@pytest.mark.parametrize("channels", [3, 8])
+def test_more_channels_stay_exact(channels):
+    # The fast loop serves mono and stereo; other shapes take the exact loops.
     rng = np.random.default_rng(channels)
     sos = random_sos(rng, 2)
     x = rng.standard_normal((5000, channels))
@@ -130,7 +146,8 @@ def test_fast_then_exact_continue_one_signal():
 
 @needs_long_double
 @pytest.mark.parametrize(("sos", "label"), [(SLOW_SOS, "riaa+3Hz"), (TAPE_SOS, "tape+3Hz")])
-def test_poles_at_09999_no_worse_than_sosfilt(sos, label):
+@pytest.mark.parametrize("channels", [1, 2])
+def test_poles_at_09999_no_worse_than_sosfilt(sos, label, channels):
     # Poles at |z| = 0.9999 (time constant 10 000 samples): float64
     # recursions drift from the exact result by up to ~1e-11 of the peak
     # (two slow poles in one section). The fast path must stay within twice
@@ -141,9 +158,11 @@ def test_poles_at_09999_no_worse_than_sosfilt(sos, label):
     rng = np.random.default_rng(5)
     n = 600_000  # 60 time constants (about 3 s at 192 kHz)
     x = 0.1 * rng.standard_normal(n) + 0.01 * np.cumsum(rng.standard_normal(n)) / np.sqrt(n)
-    y = run(Equalizer(sos, exact=False), x, [65536, 4096, 256, 1000])
+    if channels == 2:  # the same signal in both channels, one of them reversed in sign
+        x = np.stack([x, -x], axis=1)
+    y = run(Equalizer(sos, channels, exact=False), x, [65536, 4096, 256, 1000])
     exact = extended(sos, x)
-    ref = signal.sosfilt(sos, x)
+    ref = signal.sosfilt(sos, x, axis=0)
     own, ours = relative(ref, exact), relative(y, exact)
     if label == "riaa+3Hz":
         assert own > 1e-13  # the hazard is real: sosfilt itself drifts here
@@ -227,16 +246,16 @@ def test_process_pcm_equals_process_then_quantize():
     assert np.array_equal(a.state, b.state) and np.array_equal(sa, sb)
 
 
-def _python_and_compiled_agree(frames: int) -> int:
+def _python_and_compiled_agree(frames: int, channels: int) -> int:
     """Run the pure-Python and compiled fast loops on ``frames`` frames; frames they did."""
     rng = np.random.default_rng(8)
     sos = random_sos(rng, 2)
     gt, dt = K.fast_tables(sos)
-    x = rng.standard_normal((frames, 1))
+    x = rng.standard_normal((frames, channels))
     results = []
-    kernel = K._fast_loop(2)
+    kernel = K._fast_loop(2, channels)
     for func in (kernel.py_func, kernel.compiled):
-        zi, y = np.full((2, 1, 2), 0.1), np.empty_like(x)
+        zi, y = np.full((2, channels, 2), 0.1), np.empty_like(x)
         finite, peak, done = func(sos, gt, dt, x, y, zi)
         results.append((y[:done], zi, bool(finite), float(peak), int(done)))
     assert np.array_equal(results[0][0], results[1][0]) and np.array_equal(results[0][1], results[1][1])
@@ -244,14 +263,18 @@ def _python_and_compiled_agree(frames: int) -> int:
     return results[0][4]
 
 
-def test_pure_python_fast_loop_equals_compiled():
-    assert _python_and_compiled_agree(1100) == 1096  # 1100 - 1100 % 8
+@pytest.mark.parametrize("channels", [1, 2])
+def test_pure_python_fast_loop_equals_compiled(channels):
+    segments = K.FAST_LANES // channels
+    assert _python_and_compiled_agree(1100, channels) == 1100 - 1100 % segments
 
 
-def test_pure_python_fast_loop_equals_compiled_over_whole_spans():
-    # two whole chunks of FAST_LANES x FAST_SPAN frames, a short chunk, 4 frames left over
-    frames = 2 * K.FAST_LANES * K.FAST_SPAN + 100
-    assert _python_and_compiled_agree(frames) == frames - 4
+@pytest.mark.parametrize("channels", [1, 2])
+def test_pure_python_fast_loop_equals_compiled_over_whole_spans(channels):
+    # two whole chunks of segments x FAST_SPAN frames, a short chunk, 3 frames left over
+    segments = K.FAST_LANES // channels
+    frames = 2 * segments * K.FAST_SPAN + 100 * segments + 3
+    assert _python_and_compiled_agree(frames, channels) == frames - 3
 
 
 def test_flag_attribute_and_repr():
