@@ -612,14 +612,6 @@ FAST_SPAN = 256
 FAST_CHANNELS = (1, 2)
 
 
-def _tree(terms: list[str]) -> str:
-    """``terms`` summed as a balanced tree (a short dependency chain)."""
-    while len(terms) > 1:
-        terms = [f"({terms[k]} + {terms[k + 1]})" if k + 1 < len(terms) else terms[k]
-                 for k in range(0, len(terms), 2)]
-    return terms[0]
-
-
 def _fast_in_source(channels: int) -> tuple[str, str]:
     """Pass "in": ``(x, tf, start, L, nl)``, the chunk from ``start`` into ``tf``.
 
@@ -714,8 +706,8 @@ def _fast_chain(zi, F, dt, L, Z, channels):
                 for m in range(n_state):
                     acc += dt[L, n, m] * s[m]
                 t[n] = s[n] + (F[n, lane] + acc)
+            s[:] = t
             for sec in range(n_sections):
-                s[2 * sec], s[2 * sec + 1] = t[2 * sec], t[2 * sec + 1]
                 Z[sec, 0, lane + channels] = s[2 * sec]
                 Z[sec, 1, lane + channels] = s[2 * sec + 1] - s[2 * sec]
 
@@ -1061,9 +1053,9 @@ def uses_fast_loop(n_sections: int, channels: int) -> bool:
     """Whether :func:`filter_unchecked` given tables runs the fast loop for this shape.
 
     Mono and stereo (:data:`FAST_CHANNELS`): their few independent chains
-    cannot fill the SIMD lanes of the exact loops. Eight and more channels
-    already overlap enough chains there (about 15x sosfilt), and the exact
-    loops are bit-identical.
+    cannot fill the SIMD lanes of the exact loops. Other channel counts keep
+    the bit-identical exact loops (eight and more fill the lanes there, about
+    15x sosfilt).
     """
     return channels in FAST_CHANNELS and n_sections <= MAX_UNROLLED_SECTIONS
 
