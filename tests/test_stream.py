@@ -214,15 +214,17 @@ def test_long_cascade_is_split_exactly():
 # ---------------------------------------------------------------- filter + quantize in one pass
 
 
-def test_process_pcm_equals_process_then_quantize():
+@pytest.mark.parametrize("channels, dtype", [(2, np.float32), (1, np.float32), (2, np.float64),
+                                             (8, np.float32), (3, np.float64)])
+def test_process_pcm_equals_process_then_quantize(channels, dtype):
     from dspeq import _kernels
 
     sos = signal.butter(4, 0.1, output="sos")
-    x = (np.random.default_rng(5).standard_normal((3000, 2)) * 0.5).astype(np.float32)
-    a, b = Equalizer(sos, 2), Equalizer(sos, 2)
+    x = (np.random.default_rng(5).standard_normal((3000, channels)) * 0.5).astype(dtype)
+    a, b = Equalizer(sos, channels), Equalizer(sos, channels)
     sa, sb = _kernels.seed_state(11), _kernels.seed_state(11)
     for lo, hi in ((0, 700), (700, 3000)):
-        got = np.empty((hi - lo, 2), np.int32)
+        got = np.empty((hi - lo, channels), np.int32)
         clips, peak = a.process_pcm(x[lo:hi], 1.5, 16, sa, got)
         y = b.process(x[lo:hi])
         want = np.empty_like(got)
