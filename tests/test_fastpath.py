@@ -246,35 +246,41 @@ def test_process_pcm_equals_process_then_quantize():
     assert np.array_equal(a.state, b.state) and np.array_equal(sa, sb)
 
 
-def _python_and_compiled_agree(frames: int, channels: int) -> int:
-    """Run the pure-Python and compiled fast loops on ``frames`` frames; frames they did."""
+def _python_and_compiled_agree(frames: int, channels: int, direct: bool = False) -> int:
+    """Run the pure-Python and compiled fast loops on ``frames`` frames; frames they did.
+
+    For stereo, also checks that the variant with the other way of reading
+    the lanes (``direct``, see ``K.FAST_DIRECT``) gives the same samples and state.
+    """
     rng = np.random.default_rng(8)
     sos = random_sos(rng, 2)
     gt, dt = K.fast_tables(sos)
     x = rng.standard_normal((frames, channels))
     results = []
-    kernel = K._fast_loop(2, channels)
-    for func in (kernel.py_func, kernel.compiled):
+    kernel = K._fast_loop(2, channels, direct)
+    others = (K._fast_loop(2, channels, not direct).compiled,) if channels == 2 else ()
+    for func in (kernel.py_func, kernel.compiled, *others):
         zi, y = np.full((2, channels, 2), 0.1), np.empty_like(x)
         finite, peak, done = func(sos, gt, dt, x, y, zi)
         results.append((y[:done], zi, bool(finite), float(peak), int(done)))
-    assert np.array_equal(results[0][0], results[1][0]) and np.array_equal(results[0][1], results[1][1])
-    assert results[0][2:] == results[1][2:]
+    for got in results[1:]:
+        assert np.array_equal(results[0][0], got[0]) and np.array_equal(results[0][1], got[1])
+        assert results[0][2:] == got[2:]
     return results[0][4]
 
 
-@pytest.mark.parametrize("channels", [1, 2])
-def test_pure_python_fast_loop_equals_compiled(channels):
+@pytest.mark.parametrize("channels, direct", [(1, False), (2, False), (2, True)])
+def test_pure_python_fast_loop_equals_compiled(channels, direct):
     segments = K.FAST_LANES // channels
-    assert _python_and_compiled_agree(1100, channels) == 1100 - 1100 % segments
+    assert _python_and_compiled_agree(1100, channels, direct) == 1100 - 1100 % segments
 
 
-@pytest.mark.parametrize("channels", [1, 2])
-def test_pure_python_fast_loop_equals_compiled_over_whole_spans(channels):
+@pytest.mark.parametrize("channels, direct", [(1, False), (2, False), (2, True)])
+def test_pure_python_fast_loop_equals_compiled_over_whole_spans(channels, direct):
     # two whole chunks of segments x FAST_SPAN frames, a short chunk, 3 frames left over
     segments = K.FAST_LANES // channels
     frames = 2 * segments * K.FAST_SPAN + 100 * segments + 3
-    assert _python_and_compiled_agree(frames, channels) == frames - 3
+    assert _python_and_compiled_agree(frames, channels, direct) == frames - 3
 
 
 def test_flag_attribute_and_repr():
