@@ -456,15 +456,17 @@ NOTES = """### Reading these figures
   large blocks, however it is written, and stereo at about 4x; eight channels fill the SIMD
   lanes, and at small blocks sosfilt's per-call overhead dominates. The fast path
   (`exact=False`, mono and stereo) breaks the chain with segments run as SIMD lanes; at large
-  blocks it is bound by memory traffic and its copies into and out of the lanes. The
+  blocks it is bound by the lanes' arithmetic and by memory traffic. The
   8-channel figures also depend on memory bandwidth (60 s of 8-channel float64 is 370 MB in
   and out). This machine is shared: medians move by 10-30 % from run to run.
 * **Fixed gain.** What remains above the codec is essentially the one kernel pass (filter,
-  TPDF dither, rounding, clip count and peak, 5–6 ns per sample, about a tenth of the codec's
-  cost). The hashes add little wall time: the input's SHA-256 runs in a thread while the file
-  is decoded, the FLAC sample MD5 is the encoder's own (STREAMINFO), and the output's SHA-256
-  (it has to read the file again once the encoder has rewritten its header) runs in a thread
-  while the finished file is synced to disk — one fsync after the tags are written, where the
+  TPDF dither, rounding, clip count and peak; its cost per sample is in the steps table). The
+  filter is the exact one (bit-identical to sosfilt, so the output does not depend on the block
+  size), whose stereo recursion is bound by its dependency chain. The hashes add little wall
+  time: the input's SHA-256 runs in a thread while the file is decoded, the FLAC sample MD5
+  is the encoder's own (STREAMINFO), and the output's SHA-256 (it has to read the file again
+  once the encoder has rewritten its header) runs in a thread while the finished file is
+  synced to disk — one fsync after the tags are written, where the
   bare run's soundfile close syncs before. Both runs pay one fsync. The CPU time of the threads
   still counts when all cores are busy (several workers).
 * **Peak-safe.** The first pass keeps the filtered samples (float32, in memory up to the

@@ -251,10 +251,11 @@ def floor_table(sos: np.ndarray) -> list[str]:
         "segments whose start states are computed ahead by superposition, and segments x "
         "channels run as eight SIMD lanes (one 512-bit register of float64), in three passes "
         "(copy into lanes, the superposition sums vectorized across the lanes, the lanes' "
-        "recursion). With the data out of cache what limits it is memory traffic and the "
-        "copies: measured alone on this machine the copy into lanes costs about 0.8 ns per "
-        "sample, the sums about 0.1 and the lanes with their scattered stores about 0.5, "
-        "against about 0.65 ns for a plain numpy copy of the same data.",
+        "recursion; stereo float64 skips the copy and reads the block directly). The lanes' "
+        "recursion is bound by arithmetic throughput (ten multiplies and eight additions per "
+        "step of eight lanes, plus the peak and the stores), the copy and the sums by memory "
+        "traffic once the data is out of the cache; DEVELOPERS.md gives each pass's cost as "
+        "measured on the machines of the sessions that built it.",
     ]
 
 
