@@ -265,10 +265,12 @@ def _unflushed_loop(n_sections: int, lanes: int) -> Callable:
 
     source = _kernels._sos_loop_source(n_sections, lanes, "float")
     namespace = {"np": np, "FLUSH_EVERY": _kernels.FLUSH_EVERY, "FLUSH_BELOW": 0.0,
-                 "_U32": np.uint32, "_tpdf_at": None, **_kernels._LANE_CONSTANTS}
+                 "_U32": np.uint32, "_quantize_run": None, "_lanes_state": _kernels._LANES_STATE.compiled,
+                 "_store_state": _kernels._STORE_STATE.compiled, **_kernels._LANE_CONSTANTS}
     exec(compile(source, "<unflushed>", "exec"), namespace)  # noqa: S102
     loop = numba.njit(nogil=True)(namespace[_kernels._sos_loop_name(n_sections, lanes, "float", False)])
-    _kernels._with_slp_vectorizer(loop)  # compiled exactly as the real one
+    if lanes > 1:  # compiled exactly as the real one (see _kernels._sos_loop)
+        _kernels._with_slp_vectorizer(loop)
     return loop
 
 

@@ -410,6 +410,29 @@ def _pcm_params(gain: float, bits: int) -> np.ndarray:
 # 0.75.) Both track the largest |output| per lane.
 
 
+def _lanes_state(zi, c0, c1):
+    """The states of channels [c0, c1) of ``zi`` as ``zl[2 * s + k, c]`` (lanes side by side).
+
+    The loops keep the states in this layout between chunks: with the
+    ``zi`` layout (channels two values apart) the SLP vectorizer packed no
+    statements of a two-lane loop (measured: 1.92 against 1.69 ns/sample).
+    """
+    zl = np.empty((2 * zi.shape[0], zi.shape[1]))
+    for s in range(zi.shape[0]):
+        for k in range(2):
+            for c in range(c0, c1):
+                zl[2 * s + k, c] = zi[s, c, k]
+    return zl
+
+
+def _store_state(zl, zi, c0, c1):
+    """Write the states of channels [c0, c1) back from ``zl`` (see _lanes_state) into ``zi``."""
+    for s in range(zi.shape[0]):
+        for k in range(2):
+            for c in range(c0, c1):
+                zi[s, c, k] = zl[2 * s + k, c]
+
+
 def _coefficient_lines(n_sections: int) -> list[str]:
     lines = []
     for s in range(n_sections):
@@ -440,7 +463,7 @@ def _group_lines(n_sections: int, lanes: int, stage: str, round32: bool) -> list
     """One chunk of frames for each group of ``lanes`` channels in [c0, c1)."""
     states = [(s, c, k) for s in range(n_sections) for c in range(lanes) for k in (0, 1)]
     lines = [f"        while g + {lanes} <= c1:"]
-    lines += [f"            z{k}_{s}_{c} = zi[{s}, g + {c}, {k}]" for s, c, k in states]
+    lines += [f"            z{k}_{s}_{c} = zl[{2 * s + k}, g + U{c}]" for s, c, k in states]
     lines += ["            i = np.uint64(start * channels + g)", "            for _ in range(nb):"]
     ind = " " * 16
     lines += [f"{ind}v{c} = np.float64(xf[i + U{c}])" for c in range(lanes)]
@@ -454,14 +477,13 @@ def _group_lines(n_sections: int, lanes: int, stage: str, round32: bool) -> list
         value = "np.float64(np.float32(v{c}))" if round32 else "v{c}"
         lines += [f"{ind}bf[i - base + U{c}] = " + value.format(c=c) for c in range(lanes)]
     lines.append(f"{ind}i += uch")
-    lines += [f"            zi[{s}, g + {c}, {k}] = z{k}_{s}_{c}" for s, c, k in states]
+    lines += [f"            zl[{2 * s + k}, g + U{c}] = z{k}_{s}_{c}" for s, c, k in states]
     # The flush works on the stored states (a loop compiles faster than one
     # statement per state); the next chunk loads them again.
-    lines += ["            for s in range(zi.shape[0]):",
+    lines += ["            for r in range(zl.shape[0]):",
               f"                for c in range(g, g + {lanes}):",
-              "                    for k in range(2):",
-              "                        if abs(zi[s, c, k]) < FLUSH_BELOW:",
-              "                            zi[s, c, k] = 0.0",
+              "                    if abs(zl[r, c]) < FLUSH_BELOW:",
+              "                        zl[r, c] = 0.0",
               f"            g += {lanes}"]
     return lines
 
@@ -510,6 +532,7 @@ def _sos_loop_source(n_sections: int, lanes: int, stage: str, round32: bool = Fa
              "    scale, lo, hi, lsb, dither = pcm[0], pcm[1], pcm[2], pcm[3], pcm[4]",
              "    counter, key = keys[0], keys[1]",
              *[f"    pk{c} = 0.0" for c in range(lanes)],
+             "    zl = _lanes_state(zi, c0, c1)",
              *(["    bf = np.empty(FLUSH_EVERY * channels)"] if stage == "pcm" else []),
              "    for start in range(0, frames, FLUSH_EVERY):",
              "        nb = min(start + FLUSH_EVERY, frames) - start",
@@ -520,7 +543,8 @@ def _sos_loop_source(n_sections: int, lanes: int, stage: str, round32: bool = Fa
         lines += ["        n = nb * channels",
                   "        clips += _quantize_run(bf[:n], scale, lo, hi, lsb, dither, "
                   "_U32(_U32(base) + counter), key, of[base:base + n])[0]"]
-    lines += ["    peak = 0.0", *[f"    peak = pk{c} if pk{c} > peak else peak" for c in range(lanes)],
+    lines += ["    _store_state(zl, zi, c0, c1)",
+              "    peak = 0.0", *[f"    peak = pk{c} if pk{c} > peak else peak" for c in range(lanes)],
               "    finite = 0.0",
               "    for c in range(c0, c1):",
               "        for s in range(zi.shape[0]):",
@@ -529,6 +553,8 @@ def _sos_loop_source(n_sections: int, lanes: int, stage: str, round32: bool = Fa
     return "\n".join(lines) + "\n"
 
 
+_LANES_STATE = _Kernel(_lanes_state)
+_STORE_STATE = _Kernel(_store_state)
 _SOS_LOOPS: dict[tuple[int, int, str, bool], _Kernel] = {}
 # Unsigned constants for lane offsets, state indices and the fast loop's lane count.
 _LANE_CONSTANTS = {f"U{c}": np.uint64(c) for c in range(16)}
@@ -544,7 +570,8 @@ def _sos_loop(n_sections: int, lanes: int, stage: str = "float", round32: bool =
             # One lane: the SLP vectorizer would pack the sections' statements
             # into one register, which chains the sections' recursions
             # together (measured: twice the time of the scalar loop).
-            _SOS_LOOPS[key] = _Kernel(_build_sos_loop(*key), helpers=(_QUANTIZE_RUN,), slp=lanes > 1)
+            helpers = (_QUANTIZE_RUN, _LANES_STATE, _STORE_STATE)
+            _SOS_LOOPS[key] = _Kernel(_build_sos_loop(*key), helpers=helpers, slp=lanes > 1)
     return _SOS_LOOPS[key]
 
 
@@ -571,7 +598,8 @@ def _build_sos_loop(n_sections: int, lanes: int, stage: str, round32: bool) -> C
 def _define(source: str, name: str, names: dict | None = None) -> Callable:
     """Define the generated function ``name`` from ``source`` (``names``: more globals it calls)."""
     namespace = {"np": np, "FLUSH_EVERY": FLUSH_EVERY, "FLUSH_BELOW": FLUSH_BELOW, "_U32": _U32,
-                 "_quantize_run": _quantize_run, **_LANE_CONSTANTS, **(names or {})}
+                 "_quantize_run": _quantize_run, "_lanes_state": _lanes_state,
+                 "_store_state": _store_state, **_LANE_CONSTANTS, **(names or {})}
     # Compiled under this file's name so numba's disk cache follows this file.
     exec(compile(source, __file__, "exec"), namespace)  # noqa: S102 - generated here
     func = namespace[name]
