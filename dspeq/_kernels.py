@@ -702,15 +702,18 @@ def _lane_reads_setup(direct: int, source: str) -> list[str]:
             *[f"    s{m} = np.uint64(({m} * L + start) * {direct})" for m in range(FAST_LANES // direct)]]
 
 
-def _lane_reads(direct: int, ind: str) -> list[str]:
-    """``v{k}`` = lane k's sample at step ``t``: from the lanes buffer, or (direct) from the block.
+def _lane_reads(direct: int, ind: str, index: str = "t") -> list[str]:
+    """``v{k}`` = lane k's sample at step ``index``: from the lanes buffer, or (direct) from the block.
 
-    Direct reads name each segment's base and the channel as a constant
-    offset, so LLVM sees the channels of a segment side by side.
+    ``index`` counts ``FAST_LANES`` per step in the lanes buffer, ``direct``
+    per step in the block. Direct reads name each segment's base and the
+    channel as a constant offset, so LLVM sees the channels of a segment side
+    by side.
     """
     if not direct:
-        return [f"{ind}v{k} = tf[t + U{k}]" for k in range(FAST_LANES)]
-    return [f"{ind}v{k} = np.float64(xf[t + s{k // direct} + U{k % direct}])" for k in range(FAST_LANES)]
+        return [f"{ind}v{k} = tf[{index} + U{k}]" for k in range(FAST_LANES)]
+    return [f"{ind}v{k} = np.float64(xf[{index} + s{k // direct} + U{k % direct}])"
+            for k in range(FAST_LANES)]
 
 
 def _fast_lanes_source(n_sections: int, channels: int, direct: bool = False) -> tuple[str, str]:
@@ -732,15 +735,15 @@ def _fast_lanes_source(n_sections: int, channels: int, direct: bool = False) -> 
              *[f"    pk{k} = pk[{k}]" for k in lanes],
              *[f"    o{k} = np.uint64(({k // channels} * L + start) * {channels} + {k % channels})"
                for k in lanes],
-             "    t = np.uint64(0)",
+             *([] if direct else ["    t = np.uint64(0)"]),
              "    i = np.uint64(0)",
              "    for _ in range(L):",
-             *_lane_reads(channels if direct else 0, ind),
+             *_lane_reads(channels if direct else 0, ind, "i" if direct else "t"),
              *_section_lines(n_sections, FAST_LANES, ind),
              *[f"{ind}a{k} = abs(v{k})" for k in lanes],
              *[f"{ind}pk{k} = a{k} if a{k} > pk{k} else pk{k}" for k in lanes],
              *[f"{ind}of[i + o{k}] = v{k}" for k in lanes],
-             f"{ind}t += U{channels if direct else FAST_LANES}",
+             *([] if direct else [f"{ind}t += U{FAST_LANES}"]),
              f"{ind}i += U{channels}",
              *[f"    Z[{s}, {q}, {k}] = z{q}_{s}_{k}" for s in range(n_sections) for q in (0, 1)
                for k in lanes],

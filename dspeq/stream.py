@@ -128,8 +128,9 @@ class Equalizer:
     (:mod:`dspeq._kernels`, "Fast path"); ``benchmarks/bench_kernel.py``
     measures both modes against sosfilt (``docs/performance.md``). The state
     after every block is still the ``zi`` of the signal so far (within
-    rounding), so blocks of any sizes and both modes can follow each other. Accuracy, measured against
-    the same recursion in extended precision (``tests/test_fastpath.py``):
+    rounding), so blocks of any sizes and both modes can follow each other.
+    Accuracy, measured against the same recursion in extended precision
+    (``tests/test_fastpath.py``):
     the fast path's error is no larger than sosfilt's own (about 1e-14 of the
     output's peak for a RIAA cascade at 96 kHz; about 2e-11 for a 3 Hz
     low-frequency limit at 192 kHz, poles at |z| = 0.9999, where sosfilt's
