@@ -66,21 +66,20 @@ Fast path
 ---------
 For one or two channels the exact loop cannot go faster than the chain,
 so :func:`filter_unchecked` given :func:`fast_tables` runs another loop
-(``Equalizer(..., exact=False)``): each chunk of ``K * L`` frames (``K =
-FAST_LANES // channels``, ``L <= FAST_SPAN``) is cut into K segments, the state at the
-start of every segment is computed ahead by superposition (the chunk's
-state carried over ``L`` silent samples plus the state the segment's input
-leaves from zero, both from tables), and the segments then run the
-ordinary recursion side by side as SIMD lanes (segments x channels), each from its own start
-state. The only loop-carried work left is one small matrix-vector product
-per segment. It is not bit-identical to sosfilt: the start states are
-rounded in another order. The tables are computed in extended precision
-and held in coordinates that stay well conditioned for poles near z = 1
-(see :func:`fast_tables`); with them the error against the recursion in
-extended precision is no larger than sosfilt's own (tests/test_fastpath.py).
-The state is flushed (see "Denormal numbers") after every chunk.
-Eight and more channels already fill the SIMD lanes of the exact loops, so
-the fast loop serves mono and stereo only (:data:`FAST_CHANNELS`).
+(``Equalizer(..., exact=False)``): it takes :data:`FAST_STEP` frames at a
+time and computes their outputs, and the state after them, straight from
+the state before them with small matrices (the cascade's response to a
+unit state and to an impulse at each frame of the step). The outputs of a
+step do not depend on each other, so they fill a SIMD register; the only
+loop-carried work is the state update, once per step. It is not
+bit-identical to sosfilt: the same sums are rounded in another order. The
+tables are computed in extended precision and held in coordinates that
+stay well conditioned for poles near z = 1 (see :func:`fast_tables`); with
+them the error against the recursion in extended precision is smaller than
+sosfilt's own (tests/test_fastpath.py). The state is flushed (see
+"Denormal numbers") every FLUSH_EVERY frames. Eight and more channels
+already fill the SIMD lanes of the exact loops, so the fast loop serves
+mono and stereo only (:data:`FAST_CHANNELS`).
 
 Dither
 ------
@@ -127,9 +126,9 @@ __all__ = [
     "channel_passes",
     "check_state",
     "filter_quantize_unchecked",
-    "FAST_LANES",
-    "FAST_SPAN",
     "FAST_CHANNELS",
+    "FAST_STEP",
+    "FAST_TABLE_FLOOR",
     "fast_tables",
     "filter_runner",
     "filter_unchecked",
@@ -556,8 +555,8 @@ def _sos_loop_source(n_sections: int, lanes: int, stage: str, round32: bool = Fa
 _LANES_STATE = _Kernel(_lanes_state)
 _STORE_STATE = _Kernel(_store_state)
 _SOS_LOOPS: dict[tuple[int, int, str, bool], _Kernel] = {}
-# Unsigned constants for lane offsets, state indices and the fast loop's lane count.
-_LANE_CONSTANTS = {f"U{c}": np.uint64(c) for c in range(16)}
+# Unsigned constants for lane offsets and state indices (up to a stereo fast step, 16).
+_LANE_CONSTANTS = {f"U{c}": np.uint64(c) for c in range(17)}
 
 
 def _sos_loop(n_sections: int, lanes: int, stage: str = "float", round32: bool = False) -> _Kernel:
@@ -598,6 +597,7 @@ def _build_sos_loop(n_sections: int, lanes: int, stage: str, round32: bool) -> C
 def _define(source: str, name: str, names: dict | None = None) -> Callable:
     """Define the generated function ``name`` from ``source`` (``names``: more globals it calls)."""
     namespace = {"np": np, "FLUSH_EVERY": FLUSH_EVERY, "FLUSH_BELOW": FLUSH_BELOW, "_U32": _U32,
+                 "FAST_STEP": FAST_STEP,
                  "_quantize_run": _quantize_run, "_lanes_state": _lanes_state,
                  "_store_state": _store_state, **_LANE_CONSTANTS, **(names or {})}
     # Compiled under this file's name so numba's disk cache follows this file.
@@ -608,275 +608,184 @@ def _define(source: str, name: str, names: dict | None = None) -> Callable:
 
 
 # --------------------------------------------------------------------------
-# Fast path: segments of a chunk as parallel lanes (not bit-identical)
+# Fast path: eight frames per step from the state (not bit-identical)
 # --------------------------------------------------------------------------
 #
-# For a block of C = 1 or 2 channels, a chunk of K * L frames (K =
-# FAST_LANES // C segments, L <= FAST_SPAN) is cut into K segments of L
-# frames; lane l = k * C + c is channel c of segment k, FAST_LANES lanes in
-# all. Each chunk takes three compiled passes, each a plain loop that LLVM
-# turns into SIMD code on its own (one loop per pass proved steadier than
-# one loop doing everything: the SLP vectorizer packs small loops well and
-# large ones badly):
+# The cascade is a linear system whose state u has two values per section
+# (in the coordinates u = (z0, z0 + z1) of fast_tables). Over a step of
+# FAST_STEP = 8 frames with input x_0 .. x_7 (one channel):
 #
-# in     copies the chunk into ``tf``, frame j of lane l at j * FAST_LANES + l;
-# sums   computes, for every lane, the state its input leaves from zero
-#        state, F[n, l] = sum_j g[L-1-j, n] tf[j * FAST_LANES + l], with g[i]
-#        the state i + 1 samples after a unit impulse (vectorized across the
-#        lanes); the driver then chains the segments' start states,
-#        s[k+1] = s[k] + (dt[L] s[k] + F[:, k]) (tables of fast_tables);
-# lanes  runs the recursion on all lanes side by side from their start
-#        states, so their dependency chains overlap like independent
-#        channels, and writes each lane's output straight to its place in
-#        ``out``; the last segment ends with the state of the chunk.
+#   y_k = sum_m C[k, m] u_m + sum_{j <= k} h[k - j] x_j     (the step's outputs)
+#   u'  = (u + sum_j G[j] x_j) + D u                         (the state after it)
 #
-# Frames left over (fewer than K) run the plain recursion. The result
-# differs from sosfilt's only by rounding: the start states of segments
-# 1..K-1 are computed in another order of operations (tests/test_fastpath.py
-# bounds the difference).
+# with h the impulse response, C the outputs of a unit state, G[j] the state
+# an impulse at j leaves, and D + I the transition over the step. The eight
+# outputs depend on the step's start state only, not on each other, so the
+# SLP vectorizer computes them as one 512-bit vector per channel (the
+# coefficient tables laid out so that each term is one vector load); the
+# only loop-carried work left is the state update, one small matrix-vector
+# product per eight frames instead of eight trips through every section.
+# The result differs from sosfilt's only by rounding, and with the tables
+# made in extended precision it is closer to the exact recursion than
+# sosfilt's (tests/test_fastpath.py). Frames left over (fewer than
+# FAST_STEP) run the exact loop.
 
-#: SIMD lanes of the fast loop: segments x channels (8 float64 = one 512-bit register).
-FAST_LANES = 8
-#: Longest segment of the fast loop (frames); the tables cover this many steps.
-FAST_SPAN = 256
+#: Frames per step of the fast loop.
+FAST_STEP = 8
 #: Channel counts the fast loop serves.
 FAST_CHANNELS = (1, 2)
-#: (channels, dtype char) whose blocks the fast loop reads straight from the
-#: block, without the "in" pass: stereo float64, where each segment's two
-#: channels are one 128-bit load (measured on AMD Zen 4: 1.05 against 1.33
-#: ns/sample in the cache, 1.8 against 2.6 out of it). For float32 stereo the
-#: direct reads measured slower (2.2 against 1.3), for mono they become
-#: gathers (2.3 against 1.7).
-FAST_DIRECT = ((2, "d"),)
+#: Table entries smaller than this are set to zero, so that a product with
+#: a state above FLUSH_BELOW is never subnormal.
+FAST_TABLE_FLOOR = 1e-100
 
 
-def _fast_in_source(channels: int) -> tuple[str, str]:
-    """Pass "in": ``(x, tf, start, L, nl)``, the chunk from ``start`` into ``tf``.
+def _tree(terms: list[str]) -> str:
+    """``terms`` summed pairwise (a balanced tree: a short dependency chain)."""
+    while len(terms) > 1:
+        terms = [f"({a} + {b})" for a, b in zip(terms[::2], terms[1::2], strict=False)] + (
+            [terms[-1]] if len(terms) % 2 else [])
+    return terms[0]
 
-    ``nl`` is FAST_LANES passed at run time: with a constant stride LLVM
-    turns the loop into scatter instructions, which are slower here.
+
+def _fast_step_lines(n_state: int, channels: int, ind: str) -> list[str]:
+    """One step of FAST_STEP frames: load, outputs, state update, peaks, stores.
+
+    Outputs are written frame-major (``y{k}_{c}`` in the order of ``out``),
+    states channel-major, so that the vectorizer packs each into whole
+    registers.
     """
-    name = f"_fast_in_{channels}ch_{FAST_LANES}lanes"
-    source = f"""
-def {name}(x, tf, start, L, nl):
-    xf = x.reshape(-1)
-    for lane in range({FAST_LANES}):
-        i = np.uint64((start + (lane // {channels}) * L) * {channels} + lane % {channels})
-        t = np.uint64(lane)
-        for _ in range(L):
-            tf[t] = np.float64(xf[i])
-            i += U{channels}
-            t += nl
-"""
-    return name, source
+    frames, chans = range(FAST_STEP), range(channels)
+    outputs = [(k, c) for k in frames for c in chans]
+    lines = [f"{ind}x{j}_{c} = np.float64(xf[i + U{j * channels + c}])" for j, c in outputs]
+    for k, c in outputs:
+        col = k * channels + c
+        from_state = _tree([f"CT[{m}, {col}] * u{m}_{c}" for m in range(n_state)])
+        # The first half of the step needs only the first half of its input
+        # (HT is 0 above the diagonal): one register's terms fewer.
+        reach = FAST_STEP if 2 * k >= FAST_STEP else FAST_STEP // 2
+        from_input = _tree([f"HT[{j}, {col}] * x{j}_{c}" for j in range(reach)])
+        lines.append(f"{ind}y{k}_{c} = {from_state} + {from_input}")
+    for c in chans:
+        for m in range(n_state):
+            from_input = _tree([f"GT[{j}, {m}] * x{j}_{c}" for j in frames])
+            from_state = _tree([f"DT[{q}, {m}] * u{q}_{c}" for q in range(n_state)])
+            lines.append(f"{ind}t{m}_{c} = (u{m}_{c} + {from_input}) + {from_state}")
+    lines += [f"{ind}u{m}_{c} = t{m}_{c}" for c in chans for m in range(n_state)]
+    lines += [f"{ind}a{k}_{c} = abs(y{k}_{c})" for k, c in outputs]
+    lines += [f"{ind}pk{k}_{c} = a{k}_{c} if a{k}_{c} > pk{k}_{c} else pk{k}_{c}" for k, c in outputs]
+    lines += [f"{ind}of[i + U{k * channels + c}] = y{k}_{c}" for k, c in outputs]
+    lines.append(f"{ind}i += U{FAST_STEP * channels}")
+    return lines
 
 
-def _fast_sums_source(n_state: int, direct: int = 0) -> tuple[str, str]:
-    """Pass "sums": ``(tf, start, gt, L, F)``, every lane's state from zero state into ``F``.
+def _fast_loop_name(n_sections: int, channels: int, part: str = "loop") -> str:
+    return f"_fast_{part}_{n_sections}s_{channels}ch_{FAST_STEP}step"
 
-    ``direct`` (the channel count, else 0): read the lanes' samples straight
-    from the block ``x`` (passed as ``tf``) from frame ``start`` on instead of
-    from the lanes buffer, see :data:`FAST_DIRECT`.
+
+def _fast_steps_source(n_sections: int, channels: int) -> str:
+    """Source of ``_fast_loop_name(n, channels, "steps")(x, out, start, n, us, HT, CT, GT, DT)`` -> peak.
+
+    ``n`` steps from frame ``start``; ``us`` (2 * n_sections, channels), the
+    state in u, is read before and written after them. A function of its
+    own, with the state in and out of a small array around the loop: so
+    the SLP vectorizer packs the states of both channels into one register
+    (inside a longer function with the flush around it, it packed them in
+    pairs).
     """
-    name = f"_fast_sums_{n_state}states_{FAST_LANES}lanes{f'_direct{direct}ch' if direct else ''}"
-    lanes = range(FAST_LANES)
-    lines = [f"def {name}(tf, start, gt, L, F):",
-             *_lane_reads_setup(direct, "tf"),
-             "    " + " = ".join(f"f{n}_{k}" for n in range(n_state) for k in lanes) + " = 0.0",
-             "    t = np.uint64(0)",
-             "    for j in range(L):",
-             *[f"        g{n} = gt[L - 1 - j, {n}]" for n in range(n_state)],
-             *_lane_reads(direct, " " * 8)]
-    for n in range(n_state):
-        lines += [f"        f{n}_{k} += g{n} * v{k}" for k in lanes]
-    lines += [f"        t += U{direct or FAST_LANES}"]
-    lines += [f"    F[{n}, {k}] = f{n}_{k}" for n in range(n_state) for k in lanes]
-    return name, "\n".join(lines) + "\n"
-
-
-def _lane_reads_setup(direct: int, source: str) -> list[str]:
-    """Setup lines for :func:`_lane_reads`: the flat block and each segment's first sample."""
-    if not direct:
-        return []
-    return [f"    xf = {source}.reshape(-1)",
-            *[f"    s{m} = np.uint64(({m} * L + start) * {direct})" for m in range(FAST_LANES // direct)]]
-
-
-def _lane_reads(direct: int, ind: str, index: str = "t") -> list[str]:
-    """``v{k}`` = lane k's sample at step ``index``: from the lanes buffer, or (direct) from the block.
-
-    ``index`` counts ``FAST_LANES`` per step in the lanes buffer, ``direct``
-    per step in the block. Direct reads name each segment's base and the
-    channel as a constant offset, so LLVM sees the channels of a segment side
-    by side.
-    """
-    if not direct:
-        return [f"{ind}v{k} = tf[{index} + U{k}]" for k in range(FAST_LANES)]
-    return [f"{ind}v{k} = np.float64(xf[{index} + s{k // direct} + U{k % direct}])"
-            for k in range(FAST_LANES)]
-
-
-def _fast_lanes_source(n_sections: int, channels: int, direct: bool = False) -> tuple[str, str]:
-    """Pass "lanes": ``(sos, tf, out, start, L, Z, pk)``, the recursion on all lanes.
-
-    ``direct``: the samples come straight from the block (passed as ``tf``),
-    see :data:`FAST_DIRECT`.
-
-    ``Z`` (n_sections, 2, FAST_LANES) holds each lane's start state in the
-    ``zi`` layout and receives its end state; ``pk`` the lanes' peaks.
-    """
-    name = f"_fast_lanes_{n_sections}s_{channels}ch_{FAST_LANES}lanes{'_direct' if direct else ''}"
-    lanes, ind = range(FAST_LANES), " " * 8
-    lines = [f"def {name}(sos, tf, out, start, L, Z, pk):", *_coefficient_lines(n_sections),
-             *_lane_reads_setup(channels if direct else 0, "tf"),
+    n_state, chans = 2 * n_sections, range(channels)
+    states = [(m, c) for c in chans for m in range(n_state)]
+    peaks = [(k, c) for k in range(FAST_STEP) for c in chans]
+    lines = [f"def {_fast_loop_name(n_sections, channels, 'steps')}(x, out, start, n, us, HT, CT, GT, DT):",
+             "    xf = x.reshape(-1)",
              "    of = out.reshape(-1)",
-             *[f"    z{q}_{s}_{k} = Z[{s}, {q}, {k}]" for s in range(n_sections) for q in (0, 1)
-               for k in lanes],
-             *[f"    pk{k} = pk[{k}]" for k in lanes],
-             *[f"    o{k} = np.uint64(({k // channels} * L + start) * {channels} + {k % channels})"
-               for k in lanes],
-             *([] if direct else ["    t = np.uint64(0)"]),
-             "    i = np.uint64(0)",
-             "    for _ in range(L):",
-             *_lane_reads(channels if direct else 0, ind, "i" if direct else "t"),
-             *_section_lines(n_sections, FAST_LANES, ind),
-             *[f"{ind}a{k} = abs(v{k})" for k in lanes],
-             *[f"{ind}pk{k} = a{k} if a{k} > pk{k} else pk{k}" for k in lanes],
-             *[f"{ind}of[i + o{k}] = v{k}" for k in lanes],
-             *([] if direct else [f"{ind}t += U{FAST_LANES}"]),
-             f"{ind}i += U{channels}",
-             *[f"    Z[{s}, {q}, {k}] = z{q}_{s}_{k}" for s in range(n_sections) for q in (0, 1)
-               for k in lanes],
-             *[f"    pk[{k}] = pk{k}" for k in lanes]]
-    return name, "\n".join(lines) + "\n"
-
-
-def _fast_chain(zi, F, dt, L, Z, channels):
-    """The driver's step between "sums" and "lanes": every lane's start state into ``Z``.
-
-    The state is carried in the coordinates of :func:`fast_tables` (``u =
-    (z0, z0 + z1)`` per section) from segment to segment, ``s[k+1] = s[k] +
-    (F[:, lane] + dt[L] s[k])``, and stored for the lanes in the ``zi``
-    layout (``z1 = u1 - u0``). A loop, not generated code: it runs once per
-    chunk, and unrolled it took LLVM many seconds to compile.
-    """
-    n_sections = zi.shape[0]
-    n_state = 2 * n_sections
-    s = np.empty(n_state)
-    t = np.empty(n_state)
-    for c in range(channels):
-        for sec in range(n_sections):
-            s[2 * sec] = zi[sec, c, 0]
-            s[2 * sec + 1] = zi[sec, c, 0] + zi[sec, c, 1]
-            Z[sec, 0, c] = zi[sec, c, 0]
-            Z[sec, 1, c] = zi[sec, c, 1]
-        for lane in range(c, Z.shape[2] - channels, channels):
-            for n in range(n_state):
-                acc = 0.0
-                for m in range(n_state):
-                    acc += dt[L, n, m] * s[m]
-                t[n] = s[n] + (F[n, lane] + acc)
-            s[:] = t
-            for sec in range(n_sections):
-                Z[sec, 0, lane + channels] = s[2 * sec]
-                Z[sec, 1, lane + channels] = s[2 * sec + 1] - s[2 * sec]
-
-
-_FAST_CHAIN = _Kernel(_fast_chain)
-
-
-def _fast_loop_name(n_sections: int, channels: int, direct: bool = False) -> str:
-    return (f"_fast_loop_{n_sections}s_{channels}ch_{FAST_LANES}lanes_{FAST_SPAN}span"
-            f"{'_direct' if direct else ''}")
-
-
-def _fast_loop_source(n_sections: int, channels: int, helpers: tuple[str, ...], direct: bool) -> str:
-    """Source of ``_fast_loop_name(n, channels, direct)(sos, gt, dt, x, out, zi)`` -> (finite, peak, done).
-
-    For blocks of ``channels`` (1 or 2; see :func:`uses_fast_loop`). The
-    frames left over (fewer than FAST_LANES // channels) are the caller's.
-    ``helpers``: the names of the passes "in" (unless ``direct``), "sums"
-    and "lanes".
-    """
-    *pass_in, pass_sums, pass_lanes = helpers
-    segments, ind = FAST_LANES // channels, " " * 8
-    lanes_in = "x" if direct else "tf"
-    last = [(s, c, q, (segments - 1) * channels + c)
-            for s in range(n_sections) for c in range(channels) for q in (0, 1)]
-    lines = [f"def {_fast_loop_name(n_sections, channels, direct)}(sos, gt, dt, x, out, zi):",
-             "    frames = x.shape[0]",
-             *([] if direct else [
-                 f"    tf = np.empty(gt.shape[0] * {FAST_LANES})",
-                 "    nl = np.uint64(tf.shape[0] // gt.shape[0])  # the lane count, at run time"]),
-             f"    F = np.empty(({2 * n_sections}, {FAST_LANES}))",
-             f"    Z = np.empty(({n_sections}, 2, {FAST_LANES}))",
-             f"    pk = np.zeros({FAST_LANES})",
-             "    start = 0",
-             f"    while frames - start >= {segments}:",
-             f"        L = min(gt.shape[0], (frames - start) // {segments})",
-             *[f"        {name}(x, tf, start, L, nl)" for name in pass_in],
-             f"        {pass_sums}({lanes_in}, start, gt, L, F)",
-             f"        _fast_chain(zi, F, dt, L, Z, {channels})",
-             f"        {pass_lanes}(sos, {lanes_in}, out, start, L, Z, pk)",
-             *[f"{ind}zi[{s}, {c}, {q}] = Z[{s}, {q}, {lane}]" for s, c, q, lane in last],
-             "        for s in range(zi.shape[0]):",
-             f"            for c in range({channels}):",
-             "                for q in range(2):",
-             "                    if abs(zi[s, c, q]) < FLUSH_BELOW:",
-             "                        zi[s, c, q] = 0.0",
-             f"        start += {segments} * L",
+             *[f"    u{m}_{c} = us[{m}, {c}]" for m, c in states],
+             *[f"    pk{k}_{c} = 0.0" for k, c in peaks],
+             f"    i = np.uint64(start * {channels})",
+             "    for _ in range(n):",
+             *_fast_step_lines(n_state, channels, " " * 8),
+             *[f"    us[{m}, {c}] = u{m}_{c}" for m, c in states],
              "    peak = 0.0",
-             f"    for k in range({FAST_LANES}):",
-             "        peak = pk[k] if pk[k] > peak else peak",
-             "    finite = 0.0",
-             "    for s in range(zi.shape[0]):",
-             f"        for c in range({channels}):",
-             "            finite += 0.0 * (zi[s, c, 0] + zi[s, c, 1])",
-             "    return finite == 0.0, peak, start"]
+             *[f"    peak = pk{k}_{c} if pk{k}_{c} > peak else peak" for k, c in peaks],
+             "    return peak"]
     return "\n".join(lines) + "\n"
 
 
-_FAST_LOOPS: dict[tuple[int, int, bool], _Kernel] = {}
+_FAST_DRIVER = """
+def {name}(x, out, zi, HT, CT, GT, DT):
+    steps = x.shape[0] // FAST_STEP
+    us = np.empty((2 * zi.shape[0], zi.shape[1]))
+    for s in range(zi.shape[0]):
+        for c in range(zi.shape[1]):
+            us[2 * s, c] = zi[s, c, 0]
+            us[2 * s + 1, c] = zi[s, c, 0] + zi[s, c, 1]
+    peak = 0.0
+    done = 0
+    while done < steps:
+        n = min(steps - done, FLUSH_EVERY // FAST_STEP)
+        p = {steps}(x, out, done * FAST_STEP, n, us, HT, CT, GT, DT)
+        peak = p if p > peak else peak
+        for m in range(us.shape[0]):
+            for c in range(us.shape[1]):
+                if abs(us[m, c]) < FLUSH_BELOW:
+                    us[m, c] = 0.0
+        done += n
+    finite = 0.0
+    for s in range(zi.shape[0]):
+        for c in range(zi.shape[1]):
+            zi[s, c, 0] = us[2 * s, c]
+            zi[s, c, 1] = us[2 * s + 1, c] - us[2 * s, c]
+            finite += 0.0 * (us[2 * s, c] + us[2 * s + 1, c])
+    return finite == 0.0, peak, steps * FAST_STEP
+"""
 
 
-def _fast_loop(n_sections: int, channels: int = 1, direct: bool = False) -> _Kernel:
+_FAST_LOOPS: dict[tuple[int, int], _Kernel] = {}
+
+
+def _fast_loop(n_sections: int, channels: int = 1) -> _Kernel:
     """The (lazily compiled) fast loop for a cascade (1 .. MAX_UNROLLED_SECTIONS), 1 or 2 channels.
 
-    ``direct``: the variant without the "in" pass (see :data:`FAST_DIRECT`).
+    ``(x, out, zi, HT, CT, GT, DT)`` -> (finite, peak, done): the tables are
+    :func:`fast_tables`'s for this cascade and channel count; ``done`` is the
+    number of frames filtered (whole steps), the frames left over are the
+    caller's. The state is flushed (see "Denormal numbers") every
+    FLUSH_EVERY frames.
     """
-    key = (n_sections, channels, direct)
+    key = (n_sections, channels)
     if key in _FAST_LOOPS:  # without the lock: this is on every block's path
         return _FAST_LOOPS[key]
     with _COMPILE_LOCK:
         if key not in _FAST_LOOPS:
-            sources = ([] if direct else [_fast_in_source(channels)]) + [
-                _fast_sums_source(2 * n_sections, channels if direct else 0),
-                _fast_lanes_source(n_sections, channels, direct)]
-            passes = tuple(_Kernel(_define(source, name), slp=True) for name, source in sources)
-            names = tuple(p.py_func.__name__ for p in passes)
-            driver = _define(_fast_loop_source(n_sections, channels, names, direct),
-                             _fast_loop_name(n_sections, channels, direct),
-                             {p.py_func.__name__: p.py_func for p in (*passes, _FAST_CHAIN)})
-            _FAST_LOOPS[key] = _Kernel(driver, helpers=(*passes, _FAST_CHAIN), slp=True)
+            name = _fast_loop_name(n_sections, channels, "steps")
+            steps = _Kernel(_define(_fast_steps_source(n_sections, channels), name), slp=True)
+            driver = _fast_loop_name(n_sections, channels)
+            source = _FAST_DRIVER.format(name=driver, steps=name)
+            _FAST_LOOPS[key] = _Kernel(_define(source, driver, {name: steps.py_func}), helpers=(steps,))
     return _FAST_LOOPS[key]
 
 
-def fast_tables(sos: np.ndarray, span: int = FAST_SPAN) -> tuple[np.ndarray, np.ndarray]:
-    """The tables of the fast loop for a cascade: ``(gt, dt)``.
+def fast_tables(sos: np.ndarray, channels: int = 1) -> tuple[np.ndarray, ...]:
+    """The tables of the fast loop for a cascade and channel count: ``(HT, CT, GT, DT)``.
 
     Parameters
     ----------
     sos : ndarray of float64, shape (n_sections, 6)
-    span : int
-        Longest segment the tables serve.
+    channels : int
+        1 or 2: the output tables repeat each column once per channel, so
+        that the loop loads every term of a frame's channels as one vector.
 
     Returns
     -------
-    gt : ndarray, shape (span, 2 * n_sections)
-        ``gt[i]``: the state ``i + 1`` samples after a unit impulse (from
-        zero state).
-    dt : ndarray, shape (span + 1, 2 * n_sections, 2 * n_sections)
-        ``dt[L] + I`` is the state transition over ``L`` samples of silence.
+    HT : ndarray, shape (FAST_STEP, FAST_STEP * channels)
+        ``HT[j, k * channels + c]``: output ``k`` of a step after a unit
+        impulse at frame ``j`` of it, from zero state (0 for ``k < j``).
+    CT : ndarray, shape (2 * n_sections, FAST_STEP * channels)
+        ``CT[m, k * channels + c]``: output ``k`` from the unit state ``m``.
+    GT : ndarray, shape (FAST_STEP, 2 * n_sections)
+        ``GT[j, m]``: state ``m`` after the step from an impulse at frame ``j``.
+    DT : ndarray, shape (2 * n_sections, 2 * n_sections)
+        ``DT[q, m]``: state ``m`` after the step from the unit state ``q``,
+        minus the identity.
 
     Notes
     -----
@@ -884,41 +793,40 @@ def fast_tables(sos: np.ndarray, span: int = FAST_SPAN) -> tuple[np.ndarray, np.
     (``z0, z1 = zi[s, c]``), and the transition is stored as its difference
     from the identity. Both matter for poles near z = 1 (a low-frequency
     limit of a few Hz): there the ``zi`` coordinates of a state nearly
-    cancel (``z1 ~ -z0``) and the transition over ``L`` samples has entries
-    of order ``L``, so rounding it to float64 would perturb the decay of the
-    slow mode by about ``L`` units in the last place at every segment; in
-    ``u`` the transition is close to the identity plus a small step, and
-    ``I + dt`` keeps the small part exactly. The tables come from running
+    cancel (``z1 ~ -z0``), so a transition in them, rounded to float64, would
+    perturb the decay of the slow mode by several units in the last place
+    at every step; in ``u`` it is the identity plus a small part, and
+    ``u + D u`` keeps the small part exactly. The tables come from running
     the recursion itself on unit inputs in extended precision
     (``np.longdouble``: a 64-bit mantissa on x86, plain float64 elsewhere),
-    changed to ``u`` and rounded once. Entries below :data:`FLUSH_BELOW`
-    are set to zero, so the loop never multiplies by a subnormal factor.
+    changed to ``u`` and rounded once. Entries below
+    :data:`FAST_TABLE_FLOOR` are set to zero.
     """
-    n_state = 2 * sos.shape[0]
-    coef = sos.astype(np.longdouble)
-    to_u = np.kron(np.eye(sos.shape[0]), [[1, 0], [1, 1]]).astype(np.longdouble)
-    from_u = np.kron(np.eye(sos.shape[0]), [[1, 0], [-1, 1]]).astype(np.longdouble)
-    # Columns: the unit states (in u), then the impulse (zero state, input 1 at sample 0).
-    z = np.zeros((n_state, n_state + 1), np.longdouble)
-    z[:, :n_state] = from_u
-    x = np.zeros(n_state + 1, np.longdouble)
-    x[n_state] = 1.0
-    dt = np.zeros((span + 1, n_state, n_state))
-    gt = np.empty((span, n_state))
-    for step in range(span):
-        v = x
-        for s, (b0, b1, b2, _, a1, a2) in enumerate(coef):
+    n_sections = sos.shape[0]
+    n_state, steps = 2 * n_sections, FAST_STEP
+    to_u = np.kron(np.eye(n_sections), [[1, 0], [1, 1]]).astype(np.longdouble)
+    # Columns: the unit states (in u), then an impulse at each frame of the step (zero state).
+    z = np.zeros((n_state, n_state + steps), np.longdouble)
+    z[:, :n_state] = np.kron(np.eye(n_sections), [[1, 0], [-1, 1]])  # u -> zi
+    y = np.zeros((steps, n_state + steps), np.longdouble)
+    for step in range(steps):
+        v = np.zeros(n_state + steps, np.longdouble)
+        v[n_state + step] = 1.0
+        for s, (b0, b1, b2, _, a1, a2) in enumerate(sos.astype(np.longdouble)):
             w = b0 * v + z[2 * s]
             z[2 * s] = b1 * v - a1 * w + z[2 * s + 1]
             z[2 * s + 1] = b2 * v - a2 * w
             v = w
-        x = np.zeros_like(x)
-        u = to_u @ z
-        dt[step + 1] = u[:, :n_state] - np.eye(n_state, dtype=np.longdouble)
-        gt[step] = u[:, n_state]
-    for table in (gt, dt):
-        table[np.abs(table) < FLUSH_BELOW] = 0.0
-    return gt, dt
+        y[step] = v
+    u = to_u @ z
+    tables = (np.repeat(y[:, n_state:].T, channels, axis=1),
+              np.repeat(y[:, :n_state].T, channels, axis=1),
+              u[:, n_state:].T,
+              (u[:, :n_state] - np.eye(n_state, dtype=np.longdouble)).T)
+    out = tuple(np.ascontiguousarray(t, dtype=np.float64) for t in tables)
+    for table in out:
+        table[np.abs(table) < FAST_TABLE_FLOOR] = 0.0
+    return out
 
 
 _NO_PCM = np.zeros(5)
@@ -1028,12 +936,11 @@ def filter_runner(n_sections: int, channels: int, fast: bool) -> Callable:
 
 def _make_runner(n: int, channels: int, fast: bool) -> Callable:
     if fast and uses_fast_loop(n, channels):
-        loops = {char: _fast_loop(n, channels, (channels, char) in FAST_DIRECT).compiled
-                 for char in "df"}
+        loop = _fast_loop(n, channels).compiled
 
         def run_fast(sos, x, zi, out, tables):
-            finite, peak, done = loops[x.dtype.char](sos, tables[0], tables[1], x, out, zi)
-            if done < x.shape[0]:  # fewer than FAST_LANES frames left: the exact loop
+            finite, peak, done = loop(x, out, zi, *tables)
+            if done < x.shape[0]:  # fewer than FAST_STEP frames left: the exact loop
                 ok, rest = filter_unchecked(sos, x[done:], zi, out[done:])
                 finite, peak = finite and ok, max(peak, rest)
             return finite, _stored_peak(peak, out.dtype)

@@ -123,18 +123,19 @@ class Equalizer:
     One or two channels are bound by the recursion's dependency chain:
     every sample waits for the previous one, and bit-identity forbids
     reordering the arithmetic. With ``exact=False`` a mono or stereo block is
-    cut into segments whose starting states are computed ahead by
-    superposition and which then run side by side as SIMD lanes
+    computed eight frames at a time straight from the state before them
+    (small matrices made in extended precision), so the eight outputs fill
+    SIMD registers and only the state update is loop-carried
     (:mod:`dspeq._kernels`, "Fast path"); ``benchmarks/bench_kernel.py``
     measures both modes against sosfilt (``docs/performance.md``). The state
     after every block is still the ``zi`` of the signal so far (within
     rounding), so blocks of any sizes and both modes can follow each other.
     Accuracy, measured against the same recursion in extended precision
-    (``tests/test_fastpath.py``):
-    the fast path's error is no larger than sosfilt's own (about 1e-14 of the
-    output's peak for a RIAA cascade at 96 kHz; about 2e-11 for a 3 Hz
-    low-frequency limit at 192 kHz, poles at |z| = 0.9999, where sosfilt's
-    float64 recursion itself is that far from the exact result), so the two
+    (``tests/test_fastpath.py``, ``docs/performance.md``): the fast path's
+    error is no larger than sosfilt's own, and where poles sit near z = 1
+    much smaller (about 1e-15 of the output's peak for a RIAA cascade at
+    96 kHz, against sosfilt's 3e-14; about 1e-12 for a 3 Hz low-frequency
+    limit at 192 kHz, poles at |z| = 0.9999, against sosfilt's 1e-10), so the two
     differ by at most the sum of both. Exact is the default: results that
     must be reproducible bit for bit (checksums, regression files) stay so
     unless a caller asks for speed.
@@ -174,7 +175,7 @@ class Equalizer:
             raise DspeqError(f"exact must be True or False, got {exact!r}")
         self._exact = bool(exact)
         fast = not exact and _kernels.uses_fast_loop(self._sos.shape[0], self._channels)
-        self._tables = _kernels.fast_tables(self._coefficients) if fast else None
+        self._tables = _kernels.fast_tables(self._coefficients, self._channels) if fast else None
         self._filter = _kernels.filter_runner(self._sos.shape[0], self._channels, fast)
         self._zi = np.zeros((self._sos.shape[0], self._channels, 2))
         self._peak = 0.0
