@@ -329,10 +329,12 @@ def scaling_table(work: Path, rounds: int) -> list[str]:
         f"Throughput of 2 workers / 1 worker: {spread(speedups)}.",
         "",
         "Where the rest goes: the files' own wall times (from the start of `process_task` to its "
-        "end, summed over the files) against the run's wall time; the first file of each worker "
-        "includes loading the kernels. With 1 worker the run is the files one after the other; "
-        "with 2 the difference between the run and half the sum is the pool's start-up (a fresh interpreter "
-        "that imports dspeq, numba and soundfile, then forks the workers) and the uneven end.",
+        "end, summed over the files) against the run's wall time; with 1 worker the first file "
+        "includes loading the kernels, forked workers inherit them. With 1 worker the run is the "
+        "files one after the other; "
+        "with 2 the difference between the run and half the sum is the pool's start-up (the first "
+        "file's design and loading the kernels in the batch's process, then forking the workers "
+        "from it) and the uneven end.",
         "",
         "| workers | sum of the files' wall times (s) | per file, relative to 1 worker "
         "| run − sum / workers (s) |",
@@ -475,10 +477,12 @@ NOTES = """### Reading these figures
   input is decoded once; the second pass reads them back and quantizes.
 * **Two workers.** A single worker also keeps the second core busy with its hashing threads
   (input SHA-256 beside the decoding, output SHA-256 beside the fsync); two workers cannot
-  borrow a core. Each worker is forked from a server that has imported dspeq, numba and
-  soundfile once, then makes its own design (numpy only, about 0.1 s) and loads the kernels
-  from numba's cache. That is why the ratio stays a little under 2 even with long files, and
-  falls with short ones.
+  borrow a core. The workers are forked from the batch's own process once it has made the
+  first file's design and loaded the kernels it runs from numba's cache (about half a second,
+  paid once instead of in every worker); a process that already runs other threads forks them
+  from a fresh server process instead, which imports dspeq, numba and soundfile first. What
+  keeps the ratio under 2 is the hashing threads, that half second and the uneven end; it falls
+  with short files.
 * **Command line.** A fresh `dspeq batch` process also pays fixed costs that a long batch
   amortizes: the imports, the default `fit` design (numpy only since the design path no longer
   imports scipy), importing numba and loading the kernels from its cache, and matplotlib for

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from pathlib import Path
 
@@ -232,6 +233,33 @@ def test_two_local_worker_processes(tmp_path, small_tree):
     assert summary.done == 3
     by = lambda j: {r["input_rel"]: r["output_audio_md5"] for r in read_records(j.manifest_path)}  # noqa: E731
     assert by(job) == by(ref_job)
+
+
+def test_workers_are_forked_only_from_a_single_threaded_process(monkeypatch):
+    # Forking copies the parent's memory but none of its other threads: a lock one of
+    # them holds would stay locked in the child. Common practice, no source.
+    import multiprocessing
+    import threading
+
+    from dspeq.batch import run as batch_run
+
+    monkeypatch.setattr(threading, "active_count", lambda: 1)
+    ctx, forked = batch_run._pool_context()
+    if "fork" in multiprocessing.get_all_start_methods():
+        assert forked and ctx.get_start_method() == "fork"
+    monkeypatch.setattr(threading, "active_count", lambda: 2)
+    ctx, forked = batch_run._pool_context()
+    assert not forked and ctx.get_start_method() in ("forkserver", "spawn")
+
+
+def test_warming_up_before_the_fork_is_best_effort(tmp_path, small_tree):
+    from dspeq.batch import run as batch_run
+
+    tasks = plan(quick_job(small_tree, tmp_path / "out", Settings(curve="riaa"))).tasks
+    missing = dataclasses.replace(tasks[0], input_path=str(tmp_path / "gone.wav"))
+    assert batch_run._warm(missing) is None  # the task itself reports the missing file
+    batch_run._warm(tasks[0])
+    assert process_task(tasks[0]).status == "done"
 
 
 @pytest.mark.slow

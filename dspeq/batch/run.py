@@ -28,6 +28,7 @@ from __future__ import annotations
 import dataclasses
 import math
 import os
+import sys
 import time
 import warnings
 from collections.abc import Callable, Iterable, Iterator
@@ -394,11 +395,17 @@ def _rate_record(r: _Render) -> dict | None:
     return rc.to_dict(r.counted.frames if r.counted is not None else r.source.frames_read)
 
 
+def _file_setup(task: Task, src: Source) -> tuple:
+    """(curve, design, deviation summary, rate change, output spec) of one file."""
+    curve, design, deviation = _design(task.settings, src.rate)
+    rc = speed.rate_change(task.settings, src.rate)
+    spec = resolve_output(task.settings.output_format, task.settings.subtype, speed.sized_like(src, rc))
+    return curve, design, deviation, rc, spec
+
+
 def _process(task: Task, digest: FileDigest, t0: float, started: datetime) -> dict:
     with Source(task.input_path) as src:
-        curve, design, deviation = _design(task.settings, src.rate)
-        rc = speed.rate_change(task.settings, src.rate)
-        spec = resolve_output(task.settings.output_format, task.settings.subtype, speed.sized_like(src, rc))
+        curve, design, deviation, rc, spec = _file_setup(task, src)
         final = _prepare_output(task)
         r = _Render(task, src, spec, curve, design, _work_dtype(src, spec), started, rate_change=rc)
         r.history_in, r.time_reference = src.read_history()
@@ -452,29 +459,92 @@ def _crashed(task: Task, exc: BaseException) -> Result:
 
 
 def _local(tasks: list[Task], workers: int) -> Iterator[Result]:
+    """Results of ``tasks`` run in this process (1 worker) or in a pool of worker processes.
+
+    The pool starts at once (not on the first ``next``), so that a caller can
+    start it before it starts threads of its own (a progress bar's monitor).
+    """
     if workers <= 1 or len(tasks) <= 1:
-        for task in tasks:
-            yield process_task(task)
-        return
-    import multiprocessing
-    from concurrent.futures import ProcessPoolExecutor, as_completed
+        return (process_task(task) for task in tasks)
+    from concurrent.futures import ProcessPoolExecutor
 
     for key, value in WORKER_ENV.items():
         os.environ.setdefault(key, value)
-    if "forkserver" in multiprocessing.get_all_start_methods():
-        ctx = multiprocessing.get_context("forkserver")
-        # Workers are forked from a server that has imported these once (numba alone
-        # takes half a second to import); the design path itself needs no scipy.
-        ctx.set_forkserver_preload(["dspeq.batch.run", "dspeq._fit", "numba", "soundfile"])
-    else:
-        ctx = multiprocessing.get_context("spawn")
-    with ProcessPoolExecutor(max_workers=min(workers, len(tasks)), mp_context=ctx) as pool:
+    ctx, forked = _pool_context()
+    if forked:
+        _warm(tasks[0])
+        sys.stdout.flush()  # or the workers would write out a copy of what is buffered
+        sys.stderr.flush()
+    pool = ProcessPoolExecutor(max_workers=min(workers, len(tasks)), mp_context=ctx)
+    try:
         futures = {pool.submit(process_task, t): t for t in tasks}
+    except BaseException:
+        pool.shutdown(cancel_futures=True)
+        raise
+    return _completed(pool, futures)
+
+
+def _completed(pool, futures: dict) -> Iterator[Result]:
+    from concurrent.futures import as_completed
+
+    with pool:
         for fut in as_completed(futures):
             try:
                 yield fut.result()
             except Exception as exc:  # noqa: BLE001 - a crashed worker fails its file only
                 yield _crashed(futures[fut], exc)
+
+
+def _pool_context() -> tuple[Any, bool]:
+    """(multiprocessing context, whether its workers are forked from this process).
+
+    Forked from this process when it runs no other thread: the workers then
+    start at once and inherit what :func:`_warm` made (the design, the
+    loaded kernels). With threads running, a fork could copy a lock held by
+    one of them, so the workers come from a fresh server process instead
+    (``forkserver``) that imports the heavy modules once, or are spawned.
+    """
+    import multiprocessing
+    import threading
+
+    methods = multiprocessing.get_all_start_methods()
+    if "fork" in methods and threading.active_count() == 1:
+        return multiprocessing.get_context("fork"), True
+    if "forkserver" in methods:
+        ctx = multiprocessing.get_context("forkserver")
+        # numba alone takes half a second to import; the design path itself needs no scipy.
+        ctx.set_forkserver_preload(["dspeq.batch.run", "dspeq._fit", "numba", "soundfile"])
+        return ctx, False
+    return multiprocessing.get_context("spawn"), False
+
+
+def _warm(task: Task) -> None:
+    """Before forking the workers: the first file's design and the loops its run calls.
+
+    Each worker would otherwise make the design and load the compiled loops
+    from numba's disk cache itself (about half a second, every worker);
+    made here once, the forked workers inherit them. Best effort: a file
+    that cannot be opened or designed for fails in its own task.
+    """
+    from .. import _kernels
+    from ..oversample import is_oversampled
+    from ..stream import Equalizer
+
+    try:
+        with Source(task.input_path) as src:
+            _, design, _, _, spec = _file_setup(task, src)
+            dtype, channels = _work_dtype(src, spec), src.channels
+    except Exception:  # noqa: BLE001 - reported by the task itself
+        return
+    if is_oversampled(design):
+        return
+    x = np.zeros((_kernels.FLUSH_EVERY, channels), dtype)
+    pcm = np.empty(x.shape, np.int32)
+    eq = Equalizer(design, channels=channels)
+    y = eq.process(x)                                   # peak-safe: filter, then …
+    _kernels.quantize_tpdf(y, 1.0, 24, _kernels.seed_state(0), pcm)  # … quantize
+    _kernels.peak_abs(y)
+    eq.process_pcm(x, 1.0, 24, _kernels.seed_state(0), pcm)        # fixed gain: one pass
 
 
 def _dask(tasks: list[Task], scheduler: str, workers: int) -> Iterator[Result]:
@@ -613,9 +683,11 @@ def run_job(job: Job, *, workers: int | None = None, scheduler: str | None = Non
     job.output_root.mkdir(parents=True, exist_ok=True)
     manifest = Manifest(job.manifest_path)
     tasks = _with_history(p.tasks, manifest)
+    # The workers start before the bar does (its monitor thread would rule out forking them).
+    results = run_tasks(tasks, workers=workers or job.workers, scheduler=scheduler)
     with manifest, tqdm(total=round(p.total_duration_s, 1), unit="s", disable=not progress,
                         desc="audio", dynamic_ncols=True, leave=True) as bar:
-        for res in run_tasks(tasks, workers=workers or job.workers, scheduler=scheduler):
+        for res in results:
             if res.record is not None:
                 manifest.append(res.record)
             summary.add(res)
