@@ -252,6 +252,19 @@ def test_workers_are_forked_only_from_a_single_threaded_process(monkeypatch):
     assert not forked and ctx.get_start_method() in ("forkserver", "spawn")
 
 
+def test_progress_bar_starts_no_thread():
+    # tqdm's monitor thread would make the batch fall back from forking its workers.
+    import io
+    import threading
+
+    from dspeq.batch import run as batch_run
+
+    before = threading.active_count()
+    with batch_run._bar_class()(total=2, file=io.StringIO()) as bar:
+        bar.update(1)
+        assert threading.active_count() == before
+
+
 def test_warming_up_before_the_fork_is_best_effort(tmp_path, small_tree):
     from dspeq.batch import run as batch_run
 

@@ -26,6 +26,7 @@ advances one progress bar over the total audio duration.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
 import os
 import sys
@@ -459,14 +460,12 @@ def _crashed(task: Task, exc: BaseException) -> Result:
 
 
 def _local(tasks: list[Task], workers: int) -> Iterator[Result]:
-    """Results of ``tasks`` run in this process (1 worker) or in a pool of worker processes.
-
-    The pool starts at once (not on the first ``next``), so that a caller can
-    start it before it starts threads of its own (a progress bar's monitor).
-    """
+    """Results of ``tasks`` run in this process (1 worker) or in a pool of worker processes."""
     if workers <= 1 or len(tasks) <= 1:
-        return (process_task(task) for task in tasks)
-    from concurrent.futures import ProcessPoolExecutor
+        for task in tasks:
+            yield process_task(task)
+        return
+    from concurrent.futures import ProcessPoolExecutor, as_completed
 
     for key, value in WORKER_ENV.items():
         os.environ.setdefault(key, value)
@@ -475,19 +474,8 @@ def _local(tasks: list[Task], workers: int) -> Iterator[Result]:
         _warm(tasks[0])
         sys.stdout.flush()  # or the workers would write out a copy of what is buffered
         sys.stderr.flush()
-    pool = ProcessPoolExecutor(max_workers=min(workers, len(tasks)), mp_context=ctx)
-    try:
+    with ProcessPoolExecutor(max_workers=min(workers, len(tasks)), mp_context=ctx) as pool:
         futures = {pool.submit(process_task, t): t for t in tasks}
-    except BaseException:
-        pool.shutdown(cancel_futures=True)
-        raise
-    return _completed(pool, futures)
-
-
-def _completed(pool, futures: dict) -> Iterator[Result]:
-    from concurrent.futures import as_completed
-
-    with pool:
         for fut in as_completed(futures):
             try:
                 yield fut.result()
@@ -648,6 +636,15 @@ def _prior(rec: dict | None) -> dict | None:
     return {k: rec.get(k) for k in keys}
 
 
+@functools.cache
+def _bar_class():
+    """tqdm without its monitor thread: the bar is updated once per file anyway, and a
+    thread running in this process would rule out forking the workers from it."""
+    from tqdm import tqdm
+
+    return type("_Bar", (tqdm,), {"monitor_interval": 0})
+
+
 def run_job(job: Job, *, workers: int | None = None, scheduler: str | None = None,
             progress: bool = False, on_result: Callable[[Result], None] | None = None,
             the_plan: Plan | None = None, report: bool = True) -> Summary:
@@ -675,19 +672,15 @@ def run_job(job: Job, *, workers: int | None = None, scheduler: str | None = Non
     OSError
         If the output folder or manifest cannot be written.
     """
-    from tqdm import tqdm
-
     t0 = time.perf_counter()
     p = the_plan or plan(job)
     summary = Summary(unmatched=len(p.unmatched))
     job.output_root.mkdir(parents=True, exist_ok=True)
     manifest = Manifest(job.manifest_path)
     tasks = _with_history(p.tasks, manifest)
-    # The workers start before the bar does (its monitor thread would rule out forking them).
-    results = run_tasks(tasks, workers=workers or job.workers, scheduler=scheduler)
-    with manifest, tqdm(total=round(p.total_duration_s, 1), unit="s", disable=not progress,
-                        desc="audio", dynamic_ncols=True, leave=True) as bar:
-        for res in results:
+    with manifest, _bar_class()(total=round(p.total_duration_s, 1), unit="s", disable=not progress,
+                                desc="audio", dynamic_ncols=True, leave=True) as bar:
+        for res in run_tasks(tasks, workers=workers or job.workers, scheduler=scheduler):
             if res.record is not None:
                 manifest.append(res.record)
             summary.add(res)
