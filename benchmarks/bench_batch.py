@@ -318,8 +318,9 @@ def scaling_table(work: Path, rounds: int) -> list[str]:
         f"### Two workers on {os.cpu_count()} cores ({len(list((work / 'eight').iterdir()))} files, "
         f"{audio_s / 60:.0f} min of audio, fixed gain, median of {rounds})",
         "",
-        "`run_tasks(tasks, workers=N)` in a fresh process; with 2 workers each worker process "
-        "makes its own design and loads the kernels. Target: ≥ 1.8x.",
+        "`run_tasks(tasks, workers=N)` in a fresh process; with 2 workers the process makes the "
+        "first file's design and loads the kernels, then forks the workers (they inherit both). "
+        "Target: ≥ 1.8x.",
         "",
         "| workers | wall (s) | audio x realtime |",
         "|---:|---:|---:|",
