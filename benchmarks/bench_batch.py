@@ -455,11 +455,12 @@ NOTES = """### Reading these figures
 
 * **Filter kernel.** The recursion of a biquad is a chain of one multiply and three additions
   per sample that bit-identity with `sosfilt` forbids reordering (see "What limits a single
-  channel"). The exact mono loop therefore runs at that latency, about 2x sosfilt's C loop at
-  large blocks, however it is written, and stereo at about 4x; eight channels fill the SIMD
-  lanes, and at small blocks sosfilt's per-call overhead dominates. The fast path
-  (`exact=False`, mono and stereo) breaks the chain with segments run as SIMD lanes; at large
-  blocks it is bound by the lanes' arithmetic and by memory traffic. The
+  channel"). The exact mono loop therefore runs at that latency, about 1.5-2x sosfilt's C
+  loop at large blocks, however it is written, and stereo at about 3-5x; eight channels fill
+  the SIMD lanes, and at small blocks sosfilt's per-call overhead dominates. The fast path
+  (`exact=False`, mono and stereo) breaks the chain, computing eight frames per step from the
+  state before them; it is bound by that arithmetic, so its speed-up depends on the CPU's
+  vector units (and on how fast sosfilt's scalar loop runs there). The
   8-channel figures also depend on memory bandwidth (60 s of 8-channel float64 is 370 MB in
   and out). This machine is shared: medians move by 10-30 % from run to run.
 * **Fixed gain.** What remains above the codec is essentially the one kernel pass (filter,
@@ -471,7 +472,9 @@ NOTES = """### Reading these figures
   once the encoder has rewritten its header) runs in a thread while the finished file is
   synced to disk — one fsync after the tags are written, where the
   bare run's soundfile close syncs before. Both runs pay one fsync. The CPU time of the threads
-  still counts when all cores are busy (several workers).
+  still counts when all cores are busy (several workers). The kernel pass and the output's
+  SHA-256 are fixed costs per sample, so they weigh more in the ratio where the codec is fast
+  (the bare row over the file's samples gives the codec's cost per sample on this machine).
 * **Peak-safe.** The first pass keeps the filtered samples (float32, in memory up to the
   64 MB budget, else in a raw temporary file that the page cache usually keeps, written by a
   thread beside the decoding and removed once read, before the output is synced), so the

@@ -252,15 +252,17 @@ def floor_table(sos: np.ndarray) -> list[str]:
         "",
         "The fast path (mono and stereo, `exact=False`) breaks the chain: it computes eight "
         "frames at a time straight from the state before them, with small matrices made in "
-        "extended precision (the cascade's response to each unit state and to an impulse at each "
-        "frame of the step). The eight outputs do not depend on each other, so they fill one "
-        "512-bit register per channel, and the only loop-carried work is the state update, a "
-        "small matrix-vector product once per eight frames (its chain: a broadcast, a multiply "
-        "and three additions). Per step of a 2-section cascade and one channel that is about "
-        "32 vector multiplies and 30 additions counted in 256-bit halves; the state chain and "
-        "the outputs share the same floating-point units, and a channel ran at 1.3-1.5 "
-        "ns/sample in the cache and out of it alike on the machines measured so far: the "
-        "arithmetic, not memory, is the limit (DEVELOPERS.md).",
+        "extended precision (the cascade's response to each unit state and to an impulse at "
+        "each frame of the step). The eight outputs do not depend on each other, so they fill "
+        "one 512-bit register (or two 256-bit ones) per channel, and the only loop-carried work"
+        " is the state update, a small matrix-vector product once per eight frames (its chain: "
+        "a broadcast, a multiply and three additions). Per step of a 2-section cascade and one "
+        "channel that is about 32 vector multiplies and 30 additions counted in 256-bit halves;"
+        " the state chain and the outputs share the same floating-point units, and a channel "
+        "runs at about the same speed in the cache and out of it: the arithmetic, not memory, "
+        "is the limit (DEVELOPERS.md). How fast the CPU does that arithmetic sets the figure: "
+        "1.3-1.5 ns/sample on an AMD Zen 4, 1.6-2.5 on an Intel Xeon whose LLVM tuning prefers "
+        "256-bit registers (both 2-core KVM guests).",
     ]
 
 
