@@ -273,7 +273,9 @@ def _unflushed_loop(n_sections: int, lanes: int) -> Callable:
     source = _kernels._sos_loop_source(n_sections, lanes, "float")
     namespace = {"np": np, "FLUSH_EVERY": _kernels.FLUSH_EVERY, "FLUSH_BELOW": 0.0,
                  "_U32": np.uint32, "_quantize_run": None, "_lanes_state": _kernels._LANES_STATE.compiled,
-                 "_store_state": _kernels._STORE_STATE.compiled, **_kernels._LANE_CONSTANTS}
+                 "_store_state": _kernels._STORE_STATE.compiled, **_kernels._LANE_CONSTANTS,
+                 "PREFETCH_AHEAD": _kernels.PREFETCH_AHEAD, "_prefetch": _kernels._PREFETCH.compiled,
+                 "_prefetch_write": _kernels._PREFETCH_WRITE.compiled}
     exec(compile(source, "<unflushed>", "exec"), namespace)  # noqa: S102
     loop = numba.njit(nogil=True)(namespace[_kernels._sos_loop_name(n_sections, lanes, "float", False)])
     if lanes > 1:  # compiled exactly as the real one (see _kernels._sos_loop)

@@ -33,7 +33,11 @@ recursions together (measured: twice the time of the scalar loop). Indices are
 unsigned so that no negative-index wraparound code sits in the loop. Frames
 are processed in chunks of :data:`FLUSH_EVERY`, every group of a chunk
 before the next chunk, which keeps the data in the L1/L2 cache for any
-channel count.
+channel count. Every frame (or step of the fast loop) asks for the cache
+lines :data:`PREFETCH_AHEAD` samples ahead in its input and output
+(``llvm.prefetch``; a no-op in the pure-Python loops): the hardware
+prefetcher alone left the loops waiting for memory on blocks out of the
+cache on some machines.
 
 Compile cache
 -------------
@@ -123,6 +127,7 @@ __all__ = [
     "GROUP_LANES",
     "MAX_UNROLLED_SECTIONS",
     "PCM_BITS",
+    "PREFETCH_AHEAD",
     "channel_passes",
     "check_state",
     "filter_quantize_unchecked",
@@ -151,6 +156,14 @@ FLUSH_BELOW = 1e-200
 MAX_UNROLLED_SECTIONS = 4
 #: Channel group widths of the generated loops (see :func:`channel_passes`).
 GROUP_LANES = (8, 4, 2, 1)
+#: How far ahead (in samples of the block) the loops ask for the cache lines
+#: of their input and output, once per frame (exact loops) or per 8 samples
+#: (fast loop). Without it, out of the cache they waited for memory: on an
+#: Intel Xeon (KVM), 60 s at 96 kHz in blocks of 65536, fast mono float64 2.7
+#: -> 1.6 ns/sample, fast stereo float32 1.9 -> 1.2, exact stereo float64 2.7
+#: -> 1.8, exact 8 channels float32 1.2 -> 1.0; no change in the cache, nor
+#: from 512 to 2048 samples ahead.
+PREFETCH_AHEAD = 512
 
 # --------------------------------------------------------------------------
 # Lazy, cached compilation
@@ -274,6 +287,58 @@ class _Kernel:
 
     def __call__(self, *args):
         return self.compiled(*args)
+
+
+def _prefetch(a, i):
+    """Hint that ``a[i]`` will be read soon: nothing in pure Python, ``llvm.prefetch`` compiled."""
+
+
+def _prefetch_write(a, i):
+    """Hint that ``a[i]`` will be written soon: nothing in pure Python, ``llvm.prefetch`` compiled."""
+
+
+def _prefetch_intrinsic(write: bool):
+    """The numba intrinsic ``(array, index) -> None`` behind :func:`_prefetch` and :func:`_prefetch_write`.
+
+    It only computes the address of ``a[i]`` (no bounds check: a prefetch
+    past the end of the array does not fault) and asks for its cache line,
+    for reading or writing, to be kept in all cache levels.
+    """
+    from llvmlite import ir
+    from numba import types as nbtypes
+    from numba.extending import intrinsic
+
+    @intrinsic
+    def prefetch(typingctx, a, i):
+        def codegen(context, builder, signature, args):
+            data = context.make_array(signature.args[0])(context, builder, args[0]).data
+            byte_ptr, i32 = ir.IntType(8).as_pointer(), ir.IntType(32)
+            fnty = ir.FunctionType(ir.VoidType(), [byte_ptr, i32, i32, i32])
+            fn = builder.module.declare_intrinsic("llvm.prefetch", [byte_ptr], fnty)
+            address = builder.bitcast(builder.gep(data, [args[1]]), byte_ptr)
+            builder.call(fn, [address, i32(int(write)), i32(3), i32(1)])
+            return context.get_dummy_value()
+        return nbtypes.void(a, i), codegen
+    return prefetch
+
+
+class _Hint:
+    """A cache hint with :class:`_Kernel`'s interface for generated loops (``py_func``, ``compiled``)."""
+
+    def __init__(self, py_func: Callable, write: bool):
+        self.py_func = py_func
+        self.write = write
+        self._compiled = None
+
+    @property
+    def compiled(self):
+        if self._compiled is None:
+            self._compiled = _prefetch_intrinsic(self.write)
+        return self._compiled
+
+
+_PREFETCH = _Hint(_prefetch, write=False)
+_PREFETCH_WRITE = _Hint(_prefetch_write, write=True)
 
 
 # --------------------------------------------------------------------------
@@ -465,6 +530,8 @@ def _group_lines(n_sections: int, lanes: int, stage: str, round32: bool) -> list
     lines += [f"            z{k}_{s}_{c} = zl[{2 * s + k}, g + U{c}]" for s, c, k in states]
     lines += ["            i = np.uint64(start * channels + g)", "            for _ in range(nb):"]
     ind = " " * 16
+    lines += [f"{ind}_prefetch(xf, i + np.uint64(PREFETCH_AHEAD))",
+              f"{ind}_prefetch_write(of, i + np.uint64(PREFETCH_AHEAD))"]
     lines += [f"{ind}v{c} = np.float64(xf[i + U{c}])" for c in range(lanes)]
     lines += _section_lines(n_sections, lanes, ind)
     # A select, not max(): numba's max() handles NaN with extra branches.
@@ -569,7 +636,7 @@ def _sos_loop(n_sections: int, lanes: int, stage: str = "float", round32: bool =
             # One lane: the SLP vectorizer would pack the sections' statements
             # into one register, which chains the sections' recursions
             # together (measured: twice the time of the scalar loop).
-            helpers = (_QUANTIZE_RUN, _LANES_STATE, _STORE_STATE)
+            helpers = (_QUANTIZE_RUN, _LANES_STATE, _STORE_STATE, _PREFETCH, _PREFETCH_WRITE)
             _SOS_LOOPS[key] = _Kernel(_build_sos_loop(*key), helpers=helpers, slp=lanes > 1)
     return _SOS_LOOPS[key]
 
@@ -597,7 +664,8 @@ def _build_sos_loop(n_sections: int, lanes: int, stage: str, round32: bool) -> C
 def _define(source: str, name: str, names: dict | None = None) -> Callable:
     """Define the generated function ``name`` from ``source`` (``names``: more globals it calls)."""
     namespace = {"np": np, "FLUSH_EVERY": FLUSH_EVERY, "FLUSH_BELOW": FLUSH_BELOW, "_U32": _U32,
-                 "FAST_STEP": FAST_STEP,
+                 "FAST_STEP": FAST_STEP, "PREFETCH_AHEAD": PREFETCH_AHEAD,
+                 "_prefetch": _prefetch, "_prefetch_write": _prefetch_write,
                  "_quantize_run": _quantize_run, "_lanes_state": _lanes_state,
                  "_store_state": _store_state, **_LANE_CONSTANTS, **(names or {})}
     # Compiled under this file's name so numba's disk cache follows this file.
@@ -656,7 +724,11 @@ def _fast_step_lines(n_state: int, channels: int, ind: str) -> list[str]:
     """
     frames, chans = range(FAST_STEP), range(channels)
     outputs = [(k, c) for k in frames for c in chans]
-    lines = [f"{ind}x{j}_{c} = np.float64(xf[i + U{j * channels + c}])" for j, c in outputs]
+    # One hint per 8 samples ahead (a 64-byte line of float64) in the input and the output.
+    ahead = [f"np.uint64({PREFETCH_AHEAD + 8 * m})" for m in range(FAST_STEP * channels // 8)]
+    lines = [f"{ind}{hint}({a}, i + {d})" for d in ahead for hint, a in (("_prefetch", "xf"),
+                                                                            ("_prefetch_write", "of"))]
+    lines += [f"{ind}x{j}_{c} = np.float64(xf[i + U{j * channels + c}])" for j, c in outputs]
     for k, c in outputs:
         col = k * channels + c
         from_state = _tree([f"CT[{m}, {col}] * u{m}_{c}" for m in range(n_state)])
@@ -757,7 +829,8 @@ def _fast_loop(n_sections: int, channels: int = 1) -> _Kernel:
     with _COMPILE_LOCK:
         if key not in _FAST_LOOPS:
             name = _fast_loop_name(n_sections, channels, "steps")
-            steps = _Kernel(_define(_fast_steps_source(n_sections, channels), name), slp=True)
+            steps = _Kernel(_define(_fast_steps_source(n_sections, channels), name),
+                            helpers=(_PREFETCH, _PREFETCH_WRITE), slp=True)
             driver = _fast_loop_name(n_sections, channels)
             source = _FAST_DRIVER.format(name=driver, steps=name)
             _FAST_LOOPS[key] = _Kernel(_define(source, driver, {name: steps.py_func}), helpers=(steps,))

@@ -181,6 +181,30 @@ def test_slp_switch_is_on_while_compiling_and_restored_after():
     assert seen == [1] and config.SLP_VECTORIZE == before
 
 
+def test_prefetch_hints_change_nothing_even_past_the_end():
+    # A prefetch is only a hint and never faults (common practice, no source): the loops
+    # ask for lines up to PREFETCH_AHEAD samples past a block's last sample.
+    import numba
+
+    read, write = K._PREFETCH.compiled, K._PREFETCH_WRITE.compiled
+
+    @numba.njit
+    def hinted_sum(a, far):
+        total = 0.0
+        for i in range(a.size):
+            read(a, np.uint64(i) + far)
+            write(a, np.uint64(i) + far)
+            total += a[i]
+        return total
+
+    a = np.arange(16.0)
+    assert hinted_sum(a, np.uint64(1 << 20)) == a.sum() == 120.0
+    assert np.array_equal(a, np.arange(16.0))
+    assert K._prefetch(a, 10**9) is None and K._prefetch_write(a, 10**9) is None
+    assert "_prefetch(xf, i + np.uint64(PREFETCH_AHEAD))" in K._sos_loop_source(2, 2, "pcm")
+    assert f"_prefetch_write(of, i + np.uint64({K.PREFETCH_AHEAD}))" in K._fast_steps_source(2, 1)
+
+
 # ---------------------------------------------------------------- fused filter + quantizer
 
 
