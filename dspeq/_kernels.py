@@ -76,14 +76,19 @@ the state before them with small matrices (the cascade's response to a
 unit state and to an impulse at each frame of the step). The outputs of a
 step do not depend on each other, so they fill a SIMD register; the only
 loop-carried work is the state update, once per step. It is not
-bit-identical to sosfilt: the same sums are rounded in another order. The
-tables are computed in extended precision and held in coordinates that
-stay well conditioned for poles near z = 1 (see :func:`fast_tables`); with
-them the error against the recursion in extended precision is smaller than
-sosfilt's own (tests/test_fastpath.py). The state is flushed (see
-"Denormal numbers") every FLUSH_EVERY frames. Eight and more channels
-already fill the SIMD lanes of the exact loops, so the fast loop serves
-mono and stereo only (:data:`FAST_CHANNELS`).
+bit-identical to sosfilt: the same sums are rounded in another order, with
+each product fused into its running sum (:func:`_fma`, IEEE 754's
+fusedMultiplyAdd: one rounding instead of two, the same result on every
+machine, slower but still exact where a CPU has no FMA instruction). The
+exact loops have no fused operations (numba contracts nothing without
+fastmath). The tables are computed in extended precision and held in
+coordinates that stay well conditioned for poles near z = 1 (see
+:func:`fast_tables`); with them the error against the recursion in
+extended precision is smaller than sosfilt's own
+(tests/test_fastpath.py). The state is flushed (see "Denormal numbers")
+every FLUSH_EVERY frames. Eight and more channels already fill the SIMD
+lanes of the exact loops, so the fast loop serves mono and stereo only
+(:data:`FAST_CHANNELS`).
 
 Dither
 ------
@@ -112,12 +117,14 @@ generator per sample cost more than the whole filter.
 
 from __future__ import annotations
 
+import math
 import os
 import stat
 import tempfile
 import threading
 import types
 from collections.abc import Callable
+from fractions import Fraction
 
 import numpy as np
 
@@ -297,6 +304,26 @@ def _prefetch_write(a, i):
     """Hint that ``a[i]`` will be written soon: nothing in pure Python, ``llvm.prefetch`` compiled."""
 
 
+def _fma(a, b, c):
+    """``a * b + c`` rounded once, as IEEE 754's fusedMultiplyAdd (``llvm.fma`` compiled).
+
+    The pure-Python version computes the exact value with fractions and
+    rounds it once (int / int true division is correctly rounded); Python
+    3.11 has no ``math.fma``.
+    """
+    if not (math.isfinite(a) and math.isfinite(b)):
+        return a * b + c
+    if not math.isfinite(c):  # the exact product is finite even where a * b overflows
+        return c
+    exact = Fraction(a) * Fraction(b) + Fraction(c)
+    if exact == 0:  # then a * b == -c exactly: the float sum has IEEE's sign of zero
+        return a * b + c
+    try:
+        return float(exact)
+    except OverflowError:
+        return math.inf if exact > 0 else -math.inf
+
+
 def _prefetch_intrinsic(write: bool):
     """The numba intrinsic ``(array, index) -> None`` behind :func:`_prefetch` and :func:`_prefetch_write`.
 
@@ -322,23 +349,44 @@ def _prefetch_intrinsic(write: bool):
     return prefetch
 
 
-class _Hint:
-    """A cache hint with :class:`_Kernel`'s interface for generated loops (``py_func``, ``compiled``)."""
+def _fma_intrinsic():
+    """The numba intrinsic behind :func:`_fma`: ``llvm.fma.f64`` (one instruction where the CPU has FMA)."""
+    from llvmlite import ir
+    from numba import types as nbtypes
+    from numba.extending import intrinsic
 
-    def __init__(self, py_func: Callable, write: bool):
+    @intrinsic
+    def fma(typingctx, a, b, c):
+        def codegen(context, builder, signature, args):
+            d = ir.DoubleType()
+            fn = builder.module.declare_intrinsic("llvm.fma", [d], ir.FunctionType(d, [d, d, d]))
+            return builder.call(fn, args)
+        return nbtypes.float64(nbtypes.float64, nbtypes.float64, nbtypes.float64), codegen
+    return fma
+
+
+class _Intrinsic:
+    """An LLVM intrinsic with :class:`_Kernel`'s interface for generated loops.
+
+    ``py_func`` runs in the pure-Python loops, ``compiled`` (made on first
+    use by ``make``, which imports numba) in the compiled ones.
+    """
+
+    def __init__(self, py_func: Callable, make: Callable[[], Callable]):
         self.py_func = py_func
-        self.write = write
+        self._make = make
         self._compiled = None
 
     @property
     def compiled(self):
         if self._compiled is None:
-            self._compiled = _prefetch_intrinsic(self.write)
+            self._compiled = self._make()
         return self._compiled
 
 
-_PREFETCH = _Hint(_prefetch, write=False)
-_PREFETCH_WRITE = _Hint(_prefetch_write, write=True)
+_PREFETCH = _Intrinsic(_prefetch, lambda: _prefetch_intrinsic(write=False))
+_PREFETCH_WRITE = _Intrinsic(_prefetch_write, lambda: _prefetch_intrinsic(write=True))
+_FMA = _Intrinsic(_fma, _fma_intrinsic)
 
 
 # --------------------------------------------------------------------------
@@ -665,7 +713,7 @@ def _define(source: str, name: str, names: dict | None = None) -> Callable:
     """Define the generated function ``name`` from ``source`` (``names``: more globals it calls)."""
     namespace = {"np": np, "FLUSH_EVERY": FLUSH_EVERY, "FLUSH_BELOW": FLUSH_BELOW, "_U32": _U32,
                  "FAST_STEP": FAST_STEP, "PREFETCH_AHEAD": PREFETCH_AHEAD,
-                 "_prefetch": _prefetch, "_prefetch_write": _prefetch_write,
+                 "_prefetch": _prefetch, "_prefetch_write": _prefetch_write, "_fma": _fma,
                  "_quantize_run": _quantize_run, "_lanes_state": _lanes_state,
                  "_store_state": _store_state, **_LANE_CONSTANTS, **(names or {})}
     # Compiled under this file's name so numba's disk cache follows this file.
@@ -715,6 +763,23 @@ def _tree(terms: list[str]) -> str:
     return terms[0]
 
 
+def _fma_sum(products: list[tuple[str, str]]) -> str:
+    """The sum of the ``products`` (a, b) as two interleaved chains of :func:`_fma`, then added.
+
+    Each product is rounded once with the running sum instead of twice; two
+    chains keep the dependency chain of the sums short.
+    """
+    chains = []
+    for terms in (products[0::2], products[1::2]):
+        if terms:
+            (a, b), *rest = terms
+            chain = f"{a} * {b}"
+            for a, b in rest:
+                chain = f"_fma({a}, {b}, {chain})"
+            chains.append(chain)
+    return _tree(chains)
+
+
 def _fast_step_lines(n_state: int, channels: int, ind: str) -> list[str]:
     """One step of FAST_STEP frames: load, outputs, state update, peaks, stores.
 
@@ -731,16 +796,16 @@ def _fast_step_lines(n_state: int, channels: int, ind: str) -> list[str]:
     lines += [f"{ind}x{j}_{c} = np.float64(xf[i + U{j * channels + c}])" for j, c in outputs]
     for k, c in outputs:
         col = k * channels + c
-        from_state = _tree([f"CT[{m}, {col}] * u{m}_{c}" for m in range(n_state)])
+        from_state = _fma_sum([(f"CT[{m}, {col}]", f"u{m}_{c}") for m in range(n_state)])
         # The first half of the step needs only the first half of its input
         # (HT is 0 above the diagonal): one register's terms fewer.
         reach = FAST_STEP if 2 * k >= FAST_STEP else FAST_STEP // 2
-        from_input = _tree([f"HT[{j}, {col}] * x{j}_{c}" for j in range(reach)])
+        from_input = _fma_sum([(f"HT[{j}, {col}]", f"x{j}_{c}") for j in range(reach)])
         lines.append(f"{ind}y{k}_{c} = {from_state} + {from_input}")
     for c in chans:
         for m in range(n_state):
-            from_input = _tree([f"GT[{j}, {m}] * x{j}_{c}" for j in frames])
-            from_state = _tree([f"DT[{q}, {m}] * u{q}_{c}" for q in range(n_state)])
+            from_input = _fma_sum([(f"GT[{j}, {m}]", f"x{j}_{c}") for j in frames])
+            from_state = _fma_sum([(f"DT[{q}, {m}]", f"u{q}_{c}") for q in range(n_state)])
             lines.append(f"{ind}t{m}_{c} = (u{m}_{c} + {from_input}) + {from_state}")
     lines += [f"{ind}u{m}_{c} = t{m}_{c}" for c in chans for m in range(n_state)]
     lines += [f"{ind}a{k}_{c} = abs(y{k}_{c})" for k, c in outputs]
@@ -830,7 +895,7 @@ def _fast_loop(n_sections: int, channels: int = 1) -> _Kernel:
         if key not in _FAST_LOOPS:
             name = _fast_loop_name(n_sections, channels, "steps")
             steps = _Kernel(_define(_fast_steps_source(n_sections, channels), name),
-                            helpers=(_PREFETCH, _PREFETCH_WRITE), slp=True)
+                            helpers=(_PREFETCH, _PREFETCH_WRITE, _FMA), slp=True)
             driver = _fast_loop_name(n_sections, channels)
             source = _FAST_DRIVER.format(name=driver, steps=name)
             _FAST_LOOPS[key] = _Kernel(_define(source, driver, {name: steps.py_func}), helpers=(steps,))

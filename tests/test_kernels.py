@@ -181,6 +181,32 @@ def test_slp_switch_is_on_while_compiling_and_restored_after():
     assert seen == [1] and config.SLP_VECTORIZE == before
 
 
+def test_fma_rounds_once_in_pure_python_and_compiled():
+    # (1 + 2^-30)(1 - 2^-30) - 1 = -2^-60 exactly: a*b alone rounds to 1.0, so a*b + c gives 0
+    # while a fused multiply-add gives -2^-60 (IEEE 754-2008, fusedMultiplyAdd: one rounding).
+    import numba
+
+    fma = K._FMA.compiled
+
+    @numba.njit
+    def compiled(a, b, c):
+        return fma(a, b, c)
+
+    a, b = 1.0 + 2.0**-30, 1.0 - 2.0**-30
+    assert a * b - 1.0 == 0.0
+    assert K._fma(a, b, -1.0) == compiled(a, b, -1.0) == -(2.0**-60)
+    rng = np.random.default_rng(7)
+    scales = rng.choice([1e-300, 1e-3, 1, 1e3, 1e300], (300, 3))
+    cases = [tuple(float(x) for x in v) for v in rng.standard_normal((300, 3)) * scales]
+    cases += [(0.0, -1.0, 0.0), (-0.0, 1.0, -0.0), (1e308, 10.0, -1e308), (1e-310, 0.5, 0.0),
+              (np.inf, 1.0, 1.0), (np.nan, 1.0, 0.0), (1e200, 1e200, -np.inf), (3.0, 1.0 / 3.0, -1.0),
+              (1e200, 1e200, np.nan), (np.inf, 0.0, 1.0), (1e200, -1e200, 1.0)]
+    for a, b, c in cases:
+        ours, llvm = K._fma(a, b, c), compiled(a, b, c)
+        assert ours == llvm or (np.isnan(ours) and np.isnan(llvm)), (a, b, c, ours, llvm)
+        assert np.signbit(ours) == np.signbit(llvm) or np.isnan(ours), (a, b, c)
+
+
 def test_prefetch_hints_change_nothing_even_past_the_end():
     # A prefetch is only a hint and never faults (common practice, no source): the loops
     # ask for lines up to PREFETCH_AHEAD samples past a block's last sample.
