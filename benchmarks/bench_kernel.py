@@ -256,13 +256,15 @@ def floor_table(sos: np.ndarray) -> list[str]:
         "each frame of the step). The eight outputs do not depend on each other, so they fill "
         "one 512-bit register (or two 256-bit ones) per channel, and the only loop-carried work"
         " is the state update, a small matrix-vector product once per eight frames (its chain: "
-        "a broadcast, a multiply and three additions). Per step of a 2-section cascade and one "
-        "channel that is about 32 vector multiplies and 30 additions counted in 256-bit halves;"
-        " the state chain and the outputs share the same floating-point units, and a channel "
-        "runs at about the same speed in the cache and out of it: the arithmetic, not memory, "
-        "is the limit (DEVELOPERS.md). How fast the CPU does that arithmetic sets the figure: "
-        "1.3-1.5 ns/sample on an AMD Zen 4, 1.6-2.5 on an Intel Xeon whose LLVM tuning prefers "
-        "256-bit registers (both 2-core KVM guests).",
+        "a broadcast, a multiply, a fused multiply-add and two additions). Per step of a "
+        "2-section cascade and one channel that is 32 vector products counted in 256-bit "
+        "halves, 20 of them fused into their sums: 42 arithmetic instructions (62 unfused); the"
+        " state chain and the outputs share the same floating-point units, and a channel runs "
+        "at about the same speed in the cache and out of it: the arithmetic, not memory, is the"
+        " limit (DEVELOPERS.md), once the loop asks for its cache lines ahead (PREFETCH_AHEAD)."
+        " How fast the CPU does that arithmetic sets the figure: 1.3-1.5 ns/sample on an AMD "
+        "Zen 4 (measured before the prefetch and the fused sums), 1.5-1.9 on an Intel Xeon "
+        "whose LLVM tuning prefers 256-bit registers (both 2-core KVM guests).",
     ]
 
 
