@@ -124,7 +124,6 @@ import tempfile
 import threading
 import types
 from collections.abc import Callable
-from fractions import Fraction
 
 import numpy as np
 
@@ -315,6 +314,8 @@ def _fma(a, b, c):
         return a * b + c
     if not math.isfinite(c):  # the exact product is finite even where a * b overflows
         return c
+    from fractions import Fraction
+
     exact = Fraction(a) * Fraction(b) + Fraction(c)
     if exact == 0:  # then a * b == -c exactly: the float sum has IEEE's sign of zero
         return a * b + c
