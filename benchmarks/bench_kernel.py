@@ -262,9 +262,9 @@ def floor_table(sos: np.ndarray) -> list[str]:
         " state chain and the outputs share the same floating-point units, and a channel runs "
         "at about the same speed in the cache and out of it: the arithmetic, not memory, is the"
         " limit (DEVELOPERS.md), once the loop asks for its cache lines ahead (PREFETCH_AHEAD)."
-        " How fast the CPU does that arithmetic sets the figure: 1.3-1.5 ns/sample on an AMD "
-        "Zen 4 (measured before the prefetch and the fused sums), 1.5-1.9 on an Intel Xeon "
-        "whose LLVM tuning prefers 256-bit registers (both 2-core KVM guests).",
+        " How fast the CPU does that arithmetic sets the figure (the last row above; on an AMD "
+        "Zen 4, 1.3-1.5 ns/sample before the prefetch and the fused sums, and 1.2-1.9 from "
+        "run to run on an Intel Xeon whose LLVM tuning prefers 256-bit registers).",
     ]
 
 
