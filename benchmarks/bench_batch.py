@@ -455,8 +455,8 @@ NOTES = """### Reading these figures
 
 * **Filter kernel.** The recursion of a biquad is a chain of one multiply and three additions
   per sample that bit-identity with `sosfilt` forbids reordering (see "What limits a single
-  channel"). The exact mono loop therefore runs at that latency, about 1.5-2x sosfilt's C
-  loop at large blocks, however it is written, and stereo at about 3-5x; eight channels fill
+  channel"). The exact mono loop therefore runs at that latency, about 2x sosfilt's C
+  loop at large blocks, however it is written, and stereo at about 4.5-5x; eight channels fill
   the SIMD lanes, and at small blocks sosfilt's per-call overhead dominates. The fast path
   (`exact=False`, mono and stereo) breaks the chain, computing eight frames per step from the
   state before them; it is bound by that arithmetic, so its speed-up depends on the CPU's
