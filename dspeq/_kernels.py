@@ -877,6 +877,164 @@ def {name}(x, out, zi, HT, CT, GT, DT):
 """
 
 
+def _vector_sum(builder, fma, products):
+    """:func:`_fma_sum` on vectors, in the same order: two interleaved chains of fma, then added."""
+    chains = []
+    for terms in (products[0::2], products[1::2]):
+        if terms:
+            (a, b), *rest = terms
+            chain = builder.fmul(a, b)
+            for a, b in rest:
+                chain = builder.call(fma, [a, b, chain])
+            chains.append(chain)
+    return chains[0] if len(chains) == 1 else builder.fadd(chains[0], chains[1])
+
+
+def _mono_steps_intrinsic(n_sections: int):
+    """The mono fast steps written in LLVM vector IR: the generated steps' arithmetic, in their order.
+
+    The same signature and results as ``_fast_steps_source(n_sections, 1)``'s
+    function, whose scalar code the SLP vectorizer packs only in part for one
+    channel (shuffles between half registers, table strides reloaded from the
+    stack). Here each output vector, the state vector and the table rows are
+    whole LLVM vectors: per step one load of the eight inputs (float64:
+    broadcast loads; float32: one conversion, then broadcast loads from a
+    stack buffer), the state's splats by shuffles, and every sum is the scalar
+    code's chain of fused multiply-adds, so the results are the same bit for
+    bit (tests/test_fastpath.py). The table rows are loaded once, before the
+    loop. The input terms that the scalar code leaves out as zero above the
+    diagonal (``HT[j, k]`` for ``k < j``) are included: for finite input they
+    add exact zeros. (An infinite input can make those early outputs NaN
+    instead of finite; the block's state is non-finite either way, and the
+    caller reports it.)
+    """
+    from llvmlite import ir
+    from numba import types as nbtypes
+    from numba.core import cgutils
+    from numba.extending import intrinsic
+
+    n_state, width = 2 * n_sections, FAST_STEP
+    d, i64, i32 = ir.DoubleType(), ir.IntType(64), ir.IntType(32)
+
+    def splat(builder, v, lane, lanes):
+        return builder.shuffle_vector(v, ir.Constant(v.type, None), ir.Constant(
+            ir.VectorType(i32, lanes), [lane] * lanes))
+
+    def vector_intrinsic(module, name, vector, n_args):
+        """``llvm.<name>.v<N>f64`` (llvmlite's declare_intrinsic names scalar types only)."""
+        full = f"llvm.{name}.v{vector.count}f64"
+        if full in module.globals:
+            return module.globals[full]
+        return ir.Function(module, ir.FunctionType(vector, [vector] * n_args), name=full)
+
+    def converted_splats(builder, xv, buf):
+        """Splats of the converted float32 inputs, as broadcast loads from a stack buffer.
+
+        Stored, then read back past an empty inline asm that takes the
+        buffer's address and clobbers memory, so that LLVM cannot forward
+        the stored vector into shuffles (measured: 1.34-1.41 -> 1.11-1.20
+        ns/sample for float32; broadcast loads use the load ports, not the
+        shuffle unit that the state's splats also need).
+        """
+        builder.store(xv, buf)
+        barrier = ir.InlineAsm(ir.FunctionType(ir.VoidType(), [buf.type]), "", "r,~{memory}",
+                               side_effect=True)
+        builder.call(barrier, [buf])
+        lanes = builder.bitcast(buf, d.as_pointer())
+        one = ir.Constant(ir.VectorType(d, 1), None)
+        loads = [builder.load(builder.gep(lanes, [i64(j)])) for j in range(width)]
+        return [splat(builder, builder.insert_element(one, v, i32(0)), 0, width) for v in loads]
+
+    def rows(builder, array, n_rows, n_cols):
+        """The rows of a C-contiguous (n_rows, n_cols) float64 table as vectors."""
+        vector = ir.VectorType(d, n_cols).as_pointer()
+        return [builder.load(builder.bitcast(builder.gep(array.data, [i64(r * n_cols)]), vector), align=8)
+                for r in range(n_rows)]
+
+    @intrinsic
+    def mono_steps(typingctx, x, out, start, n, us, HT, CT, GT, DT):
+        arrays = (x, out, us, HT, CT, GT, DT)
+        if not all(isinstance(a, nbtypes.Array) and a.layout == "C" for a in arrays):
+            return None  # the pointer arithmetic below needs C-contiguous arrays
+
+        def codegen(context, builder, signature, args):
+            x_a, out_a, _, _, us_a, *tables = [
+                context.make_array(t)(context, builder, v) if isinstance(t, nbtypes.Array) else v
+                for t, v in zip(signature.args, args, strict=True)]
+            start_v, n_v = args[2], args[3]
+            vw, vs = ir.VectorType(d, width), ir.VectorType(d, n_state)
+            xt = context.get_value_type(signature.args[0].dtype)
+            ot = context.get_value_type(signature.args[1].dtype)
+            module = builder.module
+            fma_w = vector_intrinsic(module, "fma", vw, 3)
+            fma_s = vector_intrinsic(module, "fma", vs, 3)
+            fabs = vector_intrinsic(module, "fabs", vw, 1)
+            byte_ptr = ir.IntType(8).as_pointer()
+            prefetch = module.declare_intrinsic("llvm.prefetch", [byte_ptr], ir.FunctionType(
+                ir.VoidType(), [byte_ptr, i32, i32, i32]))
+            ht, ct = rows(builder, tables[0], width, width), rows(builder, tables[1], n_state, width)
+            gt, dt = rows(builder, tables[2], width, n_state), rows(builder, tables[3], n_state, n_state)
+            u0 = ir.Constant(vs, None)
+            for m in range(n_state):
+                u0 = builder.insert_element(u0, builder.load(builder.gep(us_a.data, [i64(m)])), i32(m))
+            # in the function's entry block: the driver calls this once per chunk
+            buf = cgutils.alloca_once(builder, vw)
+            entry = builder.block
+            head = builder.append_basic_block("mono.head")
+            body = builder.append_basic_block("mono.body")
+            done = builder.append_basic_block("mono.done")
+            builder.branch(head)
+            builder.position_at_end(head)
+            i = builder.phi(i64)
+            k = builder.phi(i64)
+            u = builder.phi(vs)
+            pk = builder.phi(vw)
+            i.add_incoming(start_v, entry)
+            k.add_incoming(ir.Constant(i64, 0), entry)
+            u.add_incoming(u0, entry)
+            pk.add_incoming(ir.Constant(vw, None), entry)
+            builder.cbranch(builder.icmp_signed("<", k, n_v), body, done)
+            builder.position_at_end(body)
+            ahead = builder.add(i, i64(PREFETCH_AHEAD))
+            for array, write in ((x_a, 0), (out_a, 1)):
+                address = builder.bitcast(builder.gep(array.data, [ahead]), byte_ptr)
+                builder.call(prefetch, [address, i32(write), i32(3), i32(1)])
+            inputs = builder.bitcast(builder.gep(x_a.data, [i]), ir.VectorType(xt, width).as_pointer())
+            xv = builder.load(inputs, align=8 if xt == d else 4)
+            if xt == d:  # splats straight from the input (broadcast loads)
+                xw = [splat(builder, xv, j, width) for j in range(width)]
+            else:
+                xw = converted_splats(builder, builder.fpext(xv, vw), buf)
+            low = ir.Constant(ir.VectorType(i32, n_state), list(range(n_state)))
+            xs = [builder.shuffle_vector(v, ir.Constant(vw, None), low) for v in xw]
+            uw = [splat(builder, u, m, width) for m in range(n_state)]
+            ustate = [splat(builder, u, m, n_state) for m in range(n_state)]
+            def vsum(fma, rows_, splats):
+                return _vector_sum(builder, fma, list(zip(rows_, splats, strict=True)))
+            y = builder.fadd(vsum(fma_w, ct, uw), vsum(fma_w, ht, xw))
+            t = builder.fadd(builder.fadd(u, vsum(fma_s, gt, xs)), vsum(fma_s, dt, ustate))
+            a = builder.call(fabs, [y])
+            pk_next = builder.select(builder.fcmp_ordered(">", a, pk), a, pk)
+            yo = y if ot == d else builder.fptrunc(y, ir.VectorType(ot, width))
+            builder.store(yo, builder.bitcast(builder.gep(out_a.data, [i]), yo.type.as_pointer()),
+                          align=8 if ot == d else 4)
+            i.add_incoming(builder.add(i, i64(width)), body)
+            k.add_incoming(builder.add(k, i64(1)), body)
+            u.add_incoming(t, body)
+            pk.add_incoming(pk_next, body)
+            builder.branch(head)
+            builder.position_at_end(done)
+            for m in range(n_state):
+                builder.store(builder.extract_element(u, i32(m)), builder.gep(us_a.data, [i64(m)]))
+            peak = ir.Constant(d, 0.0)
+            for lane in range(width):
+                e = builder.extract_element(pk, i32(lane))
+                peak = builder.select(builder.fcmp_ordered(">", e, peak), e, peak)
+            return peak
+        return nbtypes.float64(x, out, start, n, us, HT, CT, GT, DT), codegen
+    return mono_steps
+
+
 _FAST_LOOPS: dict[tuple[int, int], _Kernel] = {}
 
 
@@ -895,8 +1053,11 @@ def _fast_loop(n_sections: int, channels: int = 1) -> _Kernel:
     with _COMPILE_LOCK:
         if key not in _FAST_LOOPS:
             name = _fast_loop_name(n_sections, channels, "steps")
-            steps = _Kernel(_define(_fast_steps_source(n_sections, channels), name),
-                            helpers=(_PREFETCH, _PREFETCH_WRITE, _FMA), slp=True)
+            scalar = _define(_fast_steps_source(n_sections, channels), name)
+            if channels == 1:
+                steps = _Intrinsic(scalar, lambda: _mono_steps_intrinsic(n_sections))
+            else:
+                steps = _Kernel(scalar, helpers=(_PREFETCH, _PREFETCH_WRITE, _FMA), slp=True)
             driver = _fast_loop_name(n_sections, channels)
             source = _FAST_DRIVER.format(name=driver, steps=name)
             _FAST_LOOPS[key] = _Kernel(_define(source, driver, {name: steps.py_func}), helpers=(steps,))

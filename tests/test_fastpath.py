@@ -252,16 +252,17 @@ def test_process_pcm_equals_process_then_quantize():
     assert np.array_equal(a.state, b.state) and np.array_equal(sa, sb)
 
 
-def _python_and_compiled_agree(frames: int, channels: int) -> int:
+def _python_and_compiled_agree(frames: int, channels: int, n_sections: int = 2,
+                               dtype: type = np.float64) -> int:
     """Run the pure-Python and compiled fast loops on ``frames`` frames; frames they did."""
     rng = np.random.default_rng(8)
-    sos = random_sos(rng, 2)
+    sos = random_sos(rng, n_sections)
     tables = K.fast_tables(sos, channels)
-    x = rng.standard_normal((frames, channels))
+    x = rng.standard_normal((frames, channels)).astype(dtype)
     results = []
-    kernel = K._fast_loop(2, channels)
+    kernel = K._fast_loop(n_sections, channels)
     for func in (kernel.py_func, kernel.compiled):
-        zi, y = np.full((2, channels, 2), 0.1), np.empty_like(x)
+        zi, y = np.full((n_sections, channels, 2), 0.1), np.empty_like(x)
         finite, peak, done = func(x, y, zi, *tables)
         results.append((y[:done], zi, bool(finite), float(peak), int(done)))
     assert np.array_equal(results[0][0], results[1][0]) and np.array_equal(results[0][1], results[1][1])
@@ -272,6 +273,14 @@ def _python_and_compiled_agree(frames: int, channels: int) -> int:
 @pytest.mark.parametrize("channels", [1, 2])
 def test_pure_python_fast_loop_equals_compiled(channels):
     assert _python_and_compiled_agree(1100, channels) == 1100 - 1100 % K.FAST_STEP
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+@pytest.mark.parametrize("n_sections", range(1, K.MAX_UNROLLED_SECTIONS + 1))
+def test_mono_vector_loop_equals_its_scalar_source(n_sections, dtype):
+    # The compiled mono steps are written as LLVM vector code (_mono_steps_intrinsic);
+    # the pure-Python loop is the scalar source they must match bit for bit.
+    assert _python_and_compiled_agree(203, 1, n_sections, dtype) == 200
 
 
 @pytest.mark.parametrize("channels", [1, 2])
