@@ -764,21 +764,33 @@ def _tree(terms: list[str]) -> str:
     return terms[0]
 
 
-def _fma_sum(products: list[tuple[str, str]]) -> str:
-    """The sum of the ``products`` (a, b) as two interleaved chains of :func:`_fma`, then added.
+def _fused_chains(products: list, mul: Callable, fma: Callable, add: Callable):
+    """The sum of the ``products`` (a, b) as two interleaved chains of fma, then added.
 
-    Each product is rounded once with the running sum instead of twice; two
-    chains keep the dependency chain of the sums short.
+    The one order of the fast loop's sums, for its scalar source
+    (:func:`_fma_sum`) and its vector IR (:func:`_mono_steps_intrinsic`):
+    ``mul(a, b)`` starts a chain, ``fma(a, b, c)`` extends it, ``add(c0, c1)``
+    joins the two.
     """
     chains = []
     for terms in (products[0::2], products[1::2]):
         if terms:
             (a, b), *rest = terms
-            chain = f"{a} * {b}"
+            chain = mul(a, b)
             for a, b in rest:
-                chain = f"_fma({a}, {b}, {chain})"
+                chain = fma(a, b, chain)
             chains.append(chain)
-    return _tree(chains)
+    return chains[0] if len(chains) == 1 else add(chains[0], chains[1])
+
+
+def _fma_sum(products: list[tuple[str, str]]) -> str:
+    """Source of the sum of the ``products`` (a, b), as :func:`_fused_chains` orders it.
+
+    Each product is rounded once with the running sum instead of twice; two
+    chains keep the dependency chain of the sums short.
+    """
+    return _fused_chains(products, lambda a, b: f"{a} * {b}", lambda a, b, c: f"_fma({a}, {b}, {c})",
+                         lambda c0, c1: _tree([c0, c1]))
 
 
 def _fast_step_lines(n_state: int, channels: int, ind: str) -> list[str]:
@@ -878,16 +890,8 @@ def {name}(x, out, zi, HT, CT, GT, DT):
 
 
 def _vector_sum(builder, fma, products):
-    """:func:`_fma_sum` on vectors, in the same order: two interleaved chains of fma, then added."""
-    chains = []
-    for terms in (products[0::2], products[1::2]):
-        if terms:
-            (a, b), *rest = terms
-            chain = builder.fmul(a, b)
-            for a, b in rest:
-                chain = builder.call(fma, [a, b, chain])
-            chains.append(chain)
-    return chains[0] if len(chains) == 1 else builder.fadd(chains[0], chains[1])
+    """:func:`_fma_sum` on LLVM vectors, in the same order (:func:`_fused_chains`)."""
+    return _fused_chains(products, builder.fmul, lambda a, b, c: builder.call(fma, [a, b, c]), builder.fadd)
 
 
 def _mono_steps_intrinsic(n_sections: int):
