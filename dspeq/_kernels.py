@@ -737,9 +737,11 @@ def _define(source: str, name: str, names: dict | None = None) -> Callable:
 #
 # with h the impulse response, C the outputs of a unit state, G[j] the state
 # an impulse at j leaves, and D + I the transition over the step. The eight
-# outputs depend on the step's start state only, not on each other, so the
-# SLP vectorizer computes them as one 512-bit vector per channel (the
-# coefficient tables laid out so that each term is one vector load); the
+# outputs depend on the step's start state only, not on each other, so they
+# are computed as one 512-bit vector per channel (for stereo the SLP
+# vectorizer packs them from the generated scalar step, the coefficient
+# tables laid out so that each term is one vector load; for mono the step
+# is written as LLVM vector code, _mono_steps_intrinsic); the
 # only loop-carried work left is the state update, one small matrix-vector
 # product per eight frames instead of eight trips through every section.
 # The result differs from sosfilt's only by rounding, and with the tables
