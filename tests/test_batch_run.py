@@ -172,6 +172,47 @@ def test_spool_writes_in_order_from_its_thread_and_reports_write_errors(tmp_path
     writer.stop()
 
 
+@pytest.mark.parametrize("direct", [True, False])
+def test_spool_chunks_round_trip_across_chunk_ends(tmp_path, monkeypatch, direct):
+    # 3 channels of float64 (24-byte frames), blocks that straddle the 65536-frame chunks
+    # and a last chunk that is not a multiple of the 4096-byte alignment of direct I/O.
+    from dspeq.batch import audio
+
+    if not direct:
+        monkeypatch.setenv("DSPEQ_SPOOL_BUFFERED", "1")
+    rng = np.random.default_rng(11)
+    x = rng.standard_normal((2 * audio._SPOOL_CHUNK_FRAMES + 12345, 3))
+    spool = audio.Spool(len(x), 3, np.float64, 0, tmp_path / "y.spool")
+    assert spool.on_disk and (direct or not spool.direct)
+    if direct and not spool.direct:
+        spool.close()
+        pytest.skip("this file system refuses O_DIRECT")
+    for start in range(0, len(x), 40000):
+        spool.append(x[start:start + 40000])
+    sizes, back = [], []
+    for b in spool.blocks(50000):
+        sizes.append(len(b))
+        back.append(b.copy())
+    assert max(sizes) <= 50000 and np.array_equal(np.concatenate(back), x)
+    assert not (tmp_path / "y.spool").exists()
+
+
+def test_spool_reader_stops_when_the_second_pass_is_abandoned(tmp_path):
+    import threading
+
+    from dspeq.batch import audio
+
+    x = np.ones((5 * audio._SPOOL_CHUNK_FRAMES, 2), np.float32)
+    spool = audio.Spool(len(x), 2, np.float32, 0, tmp_path / "z.spool")
+    spool.append(x)
+    blocks = spool.blocks(1000)
+    assert np.array_equal(next(blocks), x[:1000])
+    blocks.close()                          # e.g. the encoder failed on the first block
+    spool.close()
+    assert not any(t.name == "dspeq-spool-read" for t in threading.enumerate())
+    assert not (tmp_path / "z.spool").exists()
+
+
 def test_unchanged_rerun_skips_and_changed_setting_reprocesses(tmp_path, small_tree):
     out = tmp_path / "out"
     s1, _ = quick_run(small_tree, out)

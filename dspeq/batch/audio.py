@@ -398,13 +398,29 @@ class Source:
 
 
 # ----------------------------------------------------------------------------- first-pass spool
+#: Alignment of direct I/O (buffer address, file offset and length): the usual page and block size.
+_DIRECT_ALIGN = 4096
+#: Frames per chunk of the raw spool file (a multiple of _DIRECT_ALIGN, so chunks hold whole frames).
+_SPOOL_CHUNK_FRAMES = 65536
+
+
 class Spool:
     """First-pass samples kept for the second pass of the peak-safe level mode.
 
     Up to ``budget_bytes`` the samples stay in memory; beyond that they go
     to a raw file (native float32/float64, no header) beside the output,
     written and read sequentially so that memory stays constant. The writes
-    run in a thread beside the first pass (a few blocks queued at most).
+    run in a thread beside the first pass. The file is written and read in
+    chunks of :data:`_SPOOL_CHUNK_FRAMES` frames through a few aligned
+    buffers that are reused, with direct I/O where the file system offers it
+    (``O_DIRECT``): the samples do not pass through the page cache, so the
+    spool needs no fresh memory however long the file (on a virtual machine
+    whose host takes free memory back, fresh pages cost about 35 us each:
+    measured, DEVELOPERS.md). Elsewhere, or with the environment variable
+    ``DSPEQ_SPOOL_BUFFERED=1``, the same chunks go through the page cache:
+    better where the spool sits on a slow disk (a NAS, spinning disks) and
+    the machine has the memory to spare, since a spool deleted before the
+    kernel writes it back never reaches the disk at all.
     """
 
     def __init__(self, frames: int, channels: int, dtype: np.dtype, budget_bytes: int, raw_path: Path):
@@ -418,12 +434,24 @@ class Spool:
         if frames * channels * self.dtype.itemsize <= budget_bytes:
             self._mem = np.empty((frames, channels), dtype=self.dtype)
         else:
-            self._file = open(raw_path, "w+b")  # noqa: SIM115 - closed in close()
-            self._writer = _BackgroundWriter(self._file)
+            import queue
+
+            self._file, self.direct = _open_raw(raw_path)
+            self._chunk = _SPOOL_CHUNK_FRAMES * self.channels * self.dtype.itemsize
+            self._free: queue.Queue = queue.Queue()
+            for _ in range(_BackgroundWriter.DEPTH + 1):
+                self._free.put(_aligned_bytes(self._chunk))
+            self._stage, self._filled = self._free.get(), 0
+            self._writer = _BackgroundWriter(self._file, recycle=self._recycle)
 
     @property
     def on_disk(self) -> bool:
         return self._file is not None
+
+    def _recycle(self, buffer: np.ndarray) -> None:
+        """A written chunk's buffer back to the pool (not the padded last one: a slice of the stage)."""
+        if len(buffer) == self._chunk:
+            self._free.put(buffer)
 
     def append(self, block: np.ndarray) -> None:
         n = len(block)
@@ -432,23 +460,51 @@ class Spool:
         if self._mem is not None:
             self._mem[self.frames:self.frames + n] = block
         else:
-            self._writer.write(np.array(block, dtype=self.dtype))  # a copy: the caller reuses its buffer
+            self._stage_bytes(np.ascontiguousarray(block, dtype=self.dtype).reshape(-1).view(np.uint8))
         self.frames += n
 
+    def _stage_bytes(self, data: np.ndarray) -> None:
+        """Copy ``data`` into the staging chunks, handing each full one to the writer."""
+        while len(data):
+            take = min(len(data), self._chunk - self._filled)
+            self._stage[self._filled:self._filled + take] = data[:take]
+            self._filled += take
+            data = data[take:]
+            if self._filled == self._chunk:
+                self._writer.write(self._stage)
+                self._stage, self._filled = self._free.get(), 0
+
+    def _flush_stage(self) -> None:
+        """Write the last, partial chunk, padded to the alignment of direct I/O."""
+        if self._filled:
+            end = -(-self._filled // _DIRECT_ALIGN) * _DIRECT_ALIGN
+            self._stage[self._filled:end] = 0
+            self._writer.write(self._stage[:end])
+            self._filled = 0
+        self._writer.finish()
+
     def blocks(self, block_frames: int) -> Iterator[np.ndarray]:
-        """Yield the kept samples again, in blocks."""
+        """Yield the kept samples again, in blocks of at most ``block_frames`` frames.
+
+        Each block is a view of a buffer that the next one overwrites.
+        """
         if self._mem is not None:
             for start in range(0, self.frames, block_frames):
                 yield self._mem[start:min(start + block_frames, self.frames)]
             return
-        self._writer.finish()
-        self._file.flush()
+        self._flush_stage()
         self._file.seek(0)
-        buf = np.empty((int(block_frames), self.channels), dtype=self.dtype)
-        raw = memoryview(buf).cast("B")
+        self._free.put(self._stage)
         frame_bytes = self.channels * self.dtype.itemsize
-        while got := self._file.readinto(raw):
-            yield buf[:got // frame_bytes]
+        reader = _BackgroundReader(self._file, self.frames * frame_bytes, self._free)
+        try:
+            for buf, n in reader:
+                chunk = buf[:n].view(self.dtype).reshape(-1, self.channels)
+                for start in range(0, len(chunk), block_frames):
+                    yield chunk[start:start + block_frames]
+                self._free.put(buf)
+        finally:
+            reader.stop()
         # Gone before the output is synced: the kernel then drops the file's dirty pages
         # instead of writing them out with the output's journal commit (ext4's ordered mode).
         self.close()
@@ -463,25 +519,101 @@ class Spool:
             _unlink(self._raw_path)
 
 
-class _BackgroundWriter:
-    """Writes copies of blocks to a file from a thread, so the writes overlap the decoding.
+class _BackgroundReader:
+    """Reads a file's first ``size`` bytes in chunks from a thread, one chunk ahead of its consumer.
 
-    At most ``depth`` copies wait at any time (the memory it may hold); the
-    file's writes release the GIL. An error of the writer is raised by the
-    next :meth:`write` or by :meth:`finish`.
+    Iterating yields ``(buffer, n_bytes)``; each buffer comes from ``free``
+    (a queue of aligned chunk buffers) and goes back there when the consumer
+    is done with it. Direct I/O has no read-ahead of its own: this is it.
     """
 
-    def __init__(self, file, depth: int = 4):
+    def __init__(self, file, size: int, free):
+        import queue
+
+        self._file, self._left, self._free = file, size, free
+        self._ready: queue.Queue = queue.Queue(maxsize=2)
+        self._stopped = False
+        self._thread = threading.Thread(target=self._run, name="dspeq-spool-read", daemon=True)
+        self._thread.start()
+
+    def __iter__(self):
+        while (item := self._ready.get()) is not None:
+            if isinstance(item, BaseException):
+                raise item
+            yield item
+
+    def _run(self) -> None:
+        try:
+            while self._left > 0 and not self._stopped:
+                buf = self._free.get()
+                got = self._file.readinto(buf)
+                if not got:
+                    raise OSError(f"spool file ended {self._left} bytes early")
+                n = min(got, self._left)
+                self._left -= n
+                self._ready.put((buf, n))
+            self._ready.put(None)
+        except BaseException as exc:  # noqa: BLE001 - handed to the consumer
+            self._ready.put(exc)
+
+    def stop(self) -> None:
+        """End the thread (also when the consumer stopped early)."""
+        self._stopped = True
+        import queue
+
+        while self._thread.is_alive():
+            try:
+                item = self._ready.get(timeout=0.05)
+            except queue.Empty:  # the thread is reading, or done
+                continue
+            if isinstance(item, tuple):
+                self._free.put(item[0])
+
+
+def _aligned_bytes(n: int) -> np.ndarray:
+    """A uint8 buffer of ``n`` bytes whose address is a multiple of _DIRECT_ALIGN."""
+    raw = np.empty(n + _DIRECT_ALIGN, np.uint8)
+    start = -raw.ctypes.data % _DIRECT_ALIGN
+    return raw[start:start + n]
+
+
+def _open_raw(path: Path):
+    """``(file, direct)``: ``path`` created for reading and writing, unbuffered, with O_DIRECT if possible."""
+    import io
+
+    flags = os.O_RDWR | os.O_CREAT | os.O_TRUNC | getattr(os, "O_BINARY", 0)
+    direct = 0 if os.environ.get("DSPEQ_SPOOL_BUFFERED") else getattr(os, "O_DIRECT", 0)
+    if direct:
+        try:
+            return io.FileIO(os.open(path, flags | direct, 0o600), "r+"), True
+        except OSError:  # e.g. tmpfs: EINVAL
+            pass
+    return io.FileIO(os.open(path, flags, 0o600), "r+"), False
+
+
+class _BackgroundWriter:
+    """Writes blocks to a file from a thread, so the writes overlap the decoding.
+
+    At most :attr:`DEPTH` blocks wait at any time (the memory it may hold);
+    the file's writes release the GIL. Each block, once written, goes to
+    ``recycle`` if given (its buffer can be filled again). An error of the
+    writer is raised by the next :meth:`write` or by :meth:`finish`.
+    """
+
+    DEPTH = 4
+
+    def __init__(self, file, recycle=None):
         import queue
 
         self._file = file
-        self._queue: queue.Queue = queue.Queue(maxsize=depth)
+        self._recycle = recycle
+        self._queue: queue.Queue = queue.Queue(maxsize=self.DEPTH)
         self._error: BaseException | None = None
         self._thread = threading.Thread(target=self._run, name="dspeq-spool", daemon=True)
         self._thread.start()
 
     def write(self, block: np.ndarray) -> None:
-        """Queue ``block`` (C-contiguous, not to be changed afterwards) for writing."""
+        """Queue ``block`` (C-contiguous, not to be changed until recycled) for writing."""
         self._raise()
         self._queue.put(block)
 
@@ -499,13 +631,22 @@ class _BackgroundWriter:
         while (block := self._queue.get()) is not None:
             if self._error is None:
                 try:
-                    self._file.write(memoryview(block).cast("B"))
+                    _write_all(self._file, memoryview(block).cast("B"))
                 except BaseException as exc:  # noqa: BLE001 - handed to the producer
                     self._error = exc
+            if self._recycle is not None:
+                self._recycle(block)
 
     def _raise(self) -> None:
         if self._error is not None:
             raise self._error
+
+
+def _write_all(file, data: memoryview) -> None:
+    """``file.write`` until all of ``data`` is written (raw files may write less at a time)."""
+    while data:
+        n = file.write(data)
+        data = data[n:] if n is not None else data[len(data):]
 
 
 def _unlink(path: str | os.PathLike) -> None:
