@@ -325,6 +325,17 @@ def _fma(a, b, c):
         return math.inf if exact > 0 else -math.inf
 
 
+def _emit_prefetch(builder, data, index, write: bool) -> None:
+    """Emit ``llvm.prefetch`` of ``data[index]`` (a pointer and an index value), kept in all cache levels."""
+    from llvmlite import ir
+
+    byte_ptr, i32 = ir.IntType(8).as_pointer(), ir.IntType(32)
+    fnty = ir.FunctionType(ir.VoidType(), [byte_ptr, i32, i32, i32])
+    fn = builder.module.declare_intrinsic("llvm.prefetch", [byte_ptr], fnty)
+    address = builder.bitcast(builder.gep(data, [index]), byte_ptr)
+    builder.call(fn, [address, i32(int(write)), i32(3), i32(1)])
+
+
 def _prefetch_intrinsic(write: bool):
     """The numba intrinsic ``(array, index) -> None`` behind :func:`_prefetch` and :func:`_prefetch_write`.
 
@@ -332,7 +343,6 @@ def _prefetch_intrinsic(write: bool):
     past the end of the array does not fault) and asks for its cache line,
     for reading or writing, to be kept in all cache levels.
     """
-    from llvmlite import ir
     from numba import types as nbtypes
     from numba.extending import intrinsic
 
@@ -340,11 +350,7 @@ def _prefetch_intrinsic(write: bool):
     def prefetch(typingctx, a, i):
         def codegen(context, builder, signature, args):
             data = context.make_array(signature.args[0])(context, builder, args[0]).data
-            byte_ptr, i32 = ir.IntType(8).as_pointer(), ir.IntType(32)
-            fnty = ir.FunctionType(ir.VoidType(), [byte_ptr, i32, i32, i32])
-            fn = builder.module.declare_intrinsic("llvm.prefetch", [byte_ptr], fnty)
-            address = builder.bitcast(builder.gep(data, [args[1]]), byte_ptr)
-            builder.call(fn, [address, i32(int(write)), i32(3), i32(1)])
+            _emit_prefetch(builder, data, args[1], write)
             return context.get_dummy_value()
         return nbtypes.void(a, i), codegen
     return prefetch
@@ -975,9 +981,6 @@ def _mono_steps_intrinsic(n_sections: int):
             fma_w = vector_intrinsic(module, "fma", vw, 3)
             fma_s = vector_intrinsic(module, "fma", vs, 3)
             fabs = vector_intrinsic(module, "fabs", vw, 1)
-            byte_ptr = ir.IntType(8).as_pointer()
-            prefetch = module.declare_intrinsic("llvm.prefetch", [byte_ptr], ir.FunctionType(
-                ir.VoidType(), [byte_ptr, i32, i32, i32]))
             ht, ct = rows(builder, tables[0], width, width), rows(builder, tables[1], n_state, width)
             gt, dt = rows(builder, tables[2], width, n_state), rows(builder, tables[3], n_state, n_state)
             u0 = ir.Constant(vs, None)
@@ -1002,9 +1005,8 @@ def _mono_steps_intrinsic(n_sections: int):
             builder.cbranch(builder.icmp_signed("<", k, n_v), body, done)
             builder.position_at_end(body)
             ahead = builder.add(i, i64(PREFETCH_AHEAD))
-            for array, write in ((x_a, 0), (out_a, 1)):
-                address = builder.bitcast(builder.gep(array.data, [ahead]), byte_ptr)
-                builder.call(prefetch, [address, i32(write), i32(3), i32(1)])
+            for array, write in ((x_a, False), (out_a, True)):
+                _emit_prefetch(builder, array.data, ahead, write)
             inputs = builder.bitcast(builder.gep(x_a.data, [i]), ir.VectorType(xt, width).as_pointer())
             xv = builder.load(inputs, align=8 if xt == d else 4)
             if xt == d:  # splats straight from the input (broadcast loads)

@@ -431,6 +431,7 @@ class Spool:
         self._file = None
         self._mem = None
         self._writer: _BackgroundWriter | None = None
+        self.direct = False  # whether the raw file bypasses the page cache (O_DIRECT)
         if frames * channels * self.dtype.itemsize <= budget_bytes:
             self._mem = np.empty((frames, channels), dtype=self.dtype)
         else:
@@ -558,9 +559,9 @@ class _BackgroundReader:
 
     def stop(self) -> None:
         """End the thread (also when the consumer stopped early)."""
-        self._stopped = True
         import queue
 
+        self._stopped = True
         while self._thread.is_alive():
             try:
                 item = self._ready.get(timeout=0.05)
