@@ -340,6 +340,49 @@ def test_dither_continues_across_the_key_change():
     assert not np.array_equal(whole[300:], K.tpdf_dither(300, K.seed_state(9)))
 
 
+
+def _documented_dither(seed: int, k0: int, n: int) -> np.ndarray:
+    """The generator as the module docstring states it, in numpy uint64 arithmetic."""
+    mask32, mask64 = np.uint64(0xFFFFFFFF), (1 << 64) - 1
+
+    def splitmix64(z: int) -> int:
+        z &= mask64
+        z = ((z ^ (z >> 30)) * 0xBF58476D1CE4E5B9) & mask64
+        z = ((z ^ (z >> 27)) * 0x94D049BB133111EB) & mask64
+        return z ^ (z >> 31)
+
+    k = np.arange(k0, k0 + n, dtype=np.uint64)
+    out = np.empty(n)
+    for e in np.unique(k >> np.uint64(32)):
+        z = splitmix64(seed + (int(e) + 1) * 0x9E3779B97F4A7C15)
+        a, b = np.uint64(z & 0xFFFFFFFF), np.uint64(z >> 32)
+        sel = (k >> np.uint64(32)) == e
+        x = ((k[sel] & mask32) + a) & mask32
+        x ^= x >> np.uint64(16)
+        x = (x * np.uint64(0x7FEB352D)) & mask32
+        x ^= b
+        x ^= x >> np.uint64(15)
+        x = (x * np.uint64(0x846CA68B)) & mask32
+        x ^= x >> np.uint64(16)
+        u1, u2 = x >> np.uint64(16), x & np.uint64(0xFFFF)
+        out[sel] = ((u1 + u2).astype(np.float64) - 65535.0) / 65536.0
+    return out
+
+
+def test_dither_is_the_documented_generator():
+    # The module docstring's formulas, recomputed independently: over the key
+    # change at 2**32 and over several of the quantizer's pieces (QUANTIZE_PIECE).
+    state = K.seed_state(31)
+    seed = int(state[0])
+    state[1] = 2**32 - 2500
+    expected = _documented_dither(seed, 2**32 - 2500, 5000)
+    assert np.array_equal(K.tpdf_dither(5000, state.copy()), expected)
+    # The quantizer adds the same values: 16-bit output of y = 0 is round(d).
+    out = np.empty((2500, 2), np.int32)
+    K.quantize_tpdf(np.zeros((2500, 2)), 1.0, 16, state, out)
+    assert np.array_equal(out.reshape(-1) >> 16, np.rint(expected).astype(np.int32))
+    assert np.count_nonzero(out) > 100   # |d| > 1/2 happens (1/4 of the time)
+
 def test_dither_values_are_uncorrelated():
     # Neighbouring samples (consecutive frames, or channels of one frame)
     # and the same index under two seeds: correlation within 5 standard
