@@ -124,6 +124,7 @@ import tempfile
 import threading
 import types
 from collections.abc import Callable
+from typing import Any
 
 import numpy as np
 
@@ -134,6 +135,7 @@ __all__ = [
     "MAX_UNROLLED_SECTIONS",
     "PCM_BITS",
     "PREFETCH_AHEAD",
+    "QUANTIZE_PIECE",
     "channel_passes",
     "check_state",
     "filter_quantize_unchecked",
@@ -143,11 +145,14 @@ __all__ = [
     "fast_tables",
     "filter_runner",
     "filter_unchecked",
+    "from_u_state",
     "pcm_bytes",
+    "pcm_runner",
     "peak_abs",
     "quantize_tpdf",
     "seed_state",
     "sos_filter",
+    "to_u_state",
     "tpdf_dither",
     "uses_fast_loop",
 ]
@@ -484,14 +489,14 @@ def _tpdf_run(c, b, out):
         out[j] = _tpdf_at(_U32(_U32(j) + c), b)
 
 
-def _quantize_span(v, scale, lo, hi, lsb, dither, seed, k, out):
+def _quantize_span(v, scale, lo, hi, lsb, dither, seed, k, out, sums):
     """Quantize ``v * scale`` (+ dither of samples ``k ...``) into ``out``; see quantize_tpdf.
 
     Returns (clipped samples, NaN samples).
     """
     m, c0, b0, c1, b1 = _span_split(seed, k, v.shape[0])
-    clips0, nans0 = _quantize_run(v[:m], scale, lo, hi, lsb, dither, c0, b0, out[:m])
-    clips1, nans1 = _quantize_run(v[m:], scale, lo, hi, lsb, dither, c1, b1, out[m:])
+    clips0, nans0 = _quantize_run(v[:m], scale, lo, hi, lsb, dither, c0, b0, out[:m], sums)
+    clips1, nans1 = _quantize_run(v[m:], scale, lo, hi, lsb, dither, c1, b1, out[m:], sums)
     return clips0 + clips1, nans0 + nans1
 
 
@@ -501,25 +506,26 @@ def _tpdf_sums(c, b, s):
         s[j] = _tpdf_sum(_U32(_U32(j) + c), b)
 
 
-def _quantize_run(v, scale, lo, hi, lsb, dither, c, b, out):
+def _quantize_run(v, scale, lo, hi, lsb, dither, c, b, out, sums):
     """The quantizer for one dither key (counter ``c`` for ``v[0]``), piece by piece.
 
     Each piece of :data:`QUANTIZE_PIECE` samples first gets its dither sums
     in a loop of its own (integer work only, so LLVM vectorizes it twice as
-    wide as the float64 loop), then :func:`_quantize_sums` uses them. In
-    one loop the hash ran at the float64 width: 1.14 against 0.77 ns per
-    sample on an Intel Xeon guest (AVX-512 with 256-bit preference).
+    wide as the float64 loop) into ``sums`` (uint32, at least
+    QUANTIZE_PIECE long: the caller's, so that no piece allocates), then
+    :func:`_quantize_sums` uses them. In one loop the hash ran at the
+    float64 width: 1.14 against 0.77 ns per sample on an Intel Xeon guest
+    (AVX-512 with 256-bit preference).
 
     Returns (clipped samples, NaN samples).
     """
     n = v.shape[0]
-    s = np.empty(min(n, QUANTIZE_PIECE), dtype=np.uint32)
     clips = 0
     nans = 0
     for i in range(0, n, QUANTIZE_PIECE):
         m = min(QUANTIZE_PIECE, n - i)
-        _tpdf_sums(_U32(c + _U32(i)), b, s[:m])
-        piece_clips, piece_nans = _quantize_sums(v[i:i + m], scale, lo, hi, lsb, dither, s,
+        _tpdf_sums(_U32(c + _U32(i)), b, sums[:m])
+        piece_clips, piece_nans = _quantize_sums(v[i:i + m], scale, lo, hi, lsb, dither, sums,
                                                  out[i:i + m])
         clips += piece_clips
         nans += piece_nans
@@ -707,7 +713,8 @@ def _sos_loop_source(n_sections: int, lanes: int, stage: str, round32: bool = Fa
              "    counter, key = keys[0], keys[1]",
              *[f"    pk{c} = 0.0" for c in range(lanes)],
              "    zl = _lanes_state(zi, c0, c1)",
-             *(["    bf = np.empty(FLUSH_EVERY * channels)"] if stage == "pcm" else []),
+             *(["    bf = np.empty(FLUSH_EVERY * channels)",
+                "    sums = np.empty(QUANTIZE_PIECE, dtype=np.uint32)"] if stage == "pcm" else []),
              "    for start in range(0, frames, FLUSH_EVERY):",
              "        nb = min(start + FLUSH_EVERY, frames) - start",
              "        base = np.uint64(start * channels)",
@@ -716,7 +723,7 @@ def _sos_loop_source(n_sections: int, lanes: int, stage: str, round32: bool = Fa
     if stage == "pcm":  # the chunk, still in the cache, through the quantizer's vectorized loop
         lines += ["        n = nb * channels",
                   "        clips += _quantize_run(bf[:n], scale, lo, hi, lsb, dither, "
-                  "_U32(_U32(base) + counter), key, of[base:base + n])[0]"]
+                  "_U32(_U32(base) + counter), key, of[base:base + n], sums)[0]"]
     lines += ["    _store_state(zl, zi, c0, c1)",
               "    peak = 0.0", *[f"    peak = pk{c} if pk{c} > peak else peak" for c in range(lanes)],
               "    finite = 0.0",
@@ -773,9 +780,11 @@ def _define(source: str, name: str, names: dict | None = None) -> Callable:
     """Define the generated function ``name`` from ``source`` (``names``: more globals it calls)."""
     namespace = {"np": np, "FLUSH_EVERY": FLUSH_EVERY, "FLUSH_BELOW": FLUSH_BELOW, "_U32": _U32,
                  "FAST_STEP": FAST_STEP, "PREFETCH_AHEAD": PREFETCH_AHEAD,
+                 "QUANTIZE_PIECE": QUANTIZE_PIECE,
                  "_prefetch": _prefetch, "_prefetch_write": _prefetch_write, "_fma": _fma,
-                 "_quantize_run": _quantize_run, "_lanes_state": _lanes_state,
-                 "_store_state": _store_state, **_LANE_CONSTANTS, **(names or {})}
+                 "_quantize_run": _quantize_run, "_quantize_span": _quantize_span,
+                 "_lanes_state": _lanes_state, "_store_state": _store_state,
+                 **_LANE_CONSTANTS, **(names or {})}
     # Compiled under this file's name so numba's disk cache follows this file.
     exec(compile(source, __file__, "exec"), namespace)  # noqa: S102 - generated here
     func = namespace[name]
@@ -921,33 +930,59 @@ def _fast_steps_source(n_sections: int, channels: int) -> str:
     return "\n".join(lines) + "\n"
 
 
-_FAST_DRIVER = """
-def {name}(x, out, zi, HT, CT, GT, DT):
-    steps = x.shape[0] // FAST_STEP
-    us = np.empty((2 * zi.shape[0], zi.shape[1]))
-    for s in range(zi.shape[0]):
-        for c in range(zi.shape[1]):
-            us[2 * s, c] = zi[s, c, 0]
-            us[2 * s + 1, c] = zi[s, c, 0] + zi[s, c, 1]
-    peak = 0.0
-    done = 0
-    while done < steps:
-        n = min(steps - done, FLUSH_EVERY // FAST_STEP)
-        p = {steps}(x, out, done * FAST_STEP, n, us, HT, CT, GT, DT)
-        peak = p if p > peak else peak
-        for m in range(us.shape[0]):
-            for c in range(us.shape[1]):
-                if abs(us[m, c]) < FLUSH_BELOW:
-                    us[m, c] = 0.0
-        done += n
-    finite = 0.0
-    for s in range(zi.shape[0]):
-        for c in range(zi.shape[1]):
-            zi[s, c, 0] = us[2 * s, c]
-            zi[s, c, 1] = us[2 * s + 1, c] - us[2 * s, c]
-            finite += 0.0 * (us[2 * s, c] + us[2 * s + 1, c])
-    return finite == 0.0, peak, steps * FAST_STEP
-"""
+def _fast_driver_source(name: str, steps: str, pcm: bool) -> str:
+    """Source of the fast loop's driver ``name``, which calls the steps function ``steps``.
+
+    ``(x, out, zu, HT, CT, GT, DT)`` -> (finite, peak, done); with ``pcm``
+    ``(x, out, zu, HT, CT, GT, DT, pcm, seed, k)`` -> (finite, peak, clips, done),
+    where ``out`` is int32 and each chunk of FLUSH_EVERY frames goes through
+    a small buffer of ``x``'s dtype (the values the float driver would
+    store) into :func:`_quantize_span` while it is in the cache (``pcm`` as
+    for the exact loops, see :func:`_sos_loop_source`; ``seed`` and ``k``
+    the dither state, which the caller advances). ``zu
+    is the state in u coordinates (:func:`to_u_state`), read and written
+    as is, so that consecutive calls continue exactly where one call would.
+    """
+    chunk_out, target = ("bf", "x[done * FAST_STEP:]") if pcm else ("out", "x")
+    first = "0" if pcm else "done * FAST_STEP"
+    lines = [f"def {name}(x, out, zu, HT, CT, GT, DT{', pcm, seed, k' if pcm else ''}):",
+             "    steps = x.shape[0] // FAST_STEP",
+             "    us = np.empty((2 * zu.shape[0], zu.shape[1]))",
+             "    for s in range(zu.shape[0]):",
+             "        for c in range(zu.shape[1]):",
+             "            us[2 * s, c] = zu[s, c, 0]",
+             "            us[2 * s + 1, c] = zu[s, c, 1]",
+             "    peak = 0.0",
+             "    clips = 0",
+             "    done = 0"]
+    if pcm:
+        lines += ["    of = out.reshape(-1)",
+                  "    bf = np.empty((FLUSH_EVERY, x.shape[1]), dtype=x.dtype)",
+                  "    bv = bf.reshape(-1)",
+                  "    sums = np.empty(QUANTIZE_PIECE, dtype=np.uint32)",
+                  "    scale, lo, hi, lsb, dither = pcm[0], pcm[1], pcm[2], pcm[3], pcm[4]"]
+    lines += ["    while done < steps:",
+              "        n = min(steps - done, FLUSH_EVERY // FAST_STEP)",
+              f"        p = {steps}({target}, {chunk_out}, {first}, n, us, HT, CT, GT, DT)",
+              "        peak = p if p > peak else peak",
+              "        for m in range(us.shape[0]):",
+              "            for c in range(us.shape[1]):",
+              "                if abs(us[m, c]) < FLUSH_BELOW:",
+              "                    us[m, c] = 0.0"]
+    if pcm:
+        lines += ["        base = done * FAST_STEP * x.shape[1]",
+                  "        m = n * FAST_STEP * x.shape[1]",
+                  "        clips += _quantize_span(bv[:m], scale, lo, hi, lsb, dither, seed, "
+                  "k + np.uint64(base), of[base:base + m], sums)[0]"]
+    lines += ["        done += n",
+              "    finite = 0.0",
+              "    for s in range(zu.shape[0]):",
+              "        for c in range(zu.shape[1]):",
+              "            zu[s, c, 0] = us[2 * s, c]",
+              "            zu[s, c, 1] = us[2 * s + 1, c]",
+              "            finite += 0.0 * (us[2 * s, c] + us[2 * s + 1, c])",
+              f"    return finite == 0.0, peak, {'clips, ' if pcm else ''}steps * FAST_STEP"]
+    return "\n".join(lines) + "\n"
 
 
 def _vector_sum(builder, fma, products):
@@ -1096,33 +1131,38 @@ def _mono_steps_intrinsic(n_sections: int):
     return mono_steps
 
 
-_FAST_LOOPS: dict[tuple[int, int], _Kernel] = {}
+_FAST_LOOPS: dict[tuple[int, int, bool], _Kernel] = {}
 
 
-def _fast_loop(n_sections: int, channels: int = 1) -> _Kernel:
+def _fast_loop(n_sections: int, channels: int = 1, pcm: bool = False) -> _Kernel:
     """The (lazily compiled) fast loop for a cascade (1 .. MAX_UNROLLED_SECTIONS), 1 or 2 channels.
 
-    ``(x, out, zi, HT, CT, GT, DT)`` -> (finite, peak, done): the tables are
-    :func:`fast_tables`'s for this cascade and channel count; ``done`` is the
-    number of frames filtered (whole steps), the frames left over are the
-    caller's. The state is flushed (see "Denormal numbers") every
-    FLUSH_EVERY frames.
+    ``(x, out, zu, HT, CT, GT, DT)`` -> (finite, peak, done): the tables are
+    :func:`fast_tables`'s for this cascade and channel count, ``zu`` the
+    state in u coordinates (:func:`to_u_state`); ``done`` is the number of
+    frames filtered (whole steps), the frames left over are the caller's.
+    The state is flushed (see "Denormal numbers") every FLUSH_EVERY frames.
+    With ``pcm``, the loop that also quantizes (see :func:`_fast_driver_source`).
     """
-    key = (n_sections, channels)
+    key = (n_sections, channels, bool(pcm))
     if key in _FAST_LOOPS:  # without the lock: this is on every block's path
         return _FAST_LOOPS[key]
+    key = key[:2]
     with _COMPILE_LOCK:
-        if key not in _FAST_LOOPS:
+        if key + (False,) not in _FAST_LOOPS:
             name = _fast_loop_name(n_sections, channels, "steps")
             scalar = _define(_fast_steps_source(n_sections, channels), name)
             if channels == 1:
                 steps = _Intrinsic(scalar, lambda: _mono_steps_intrinsic(n_sections))
             else:
                 steps = _Kernel(scalar, helpers=(_PREFETCH, _PREFETCH_WRITE, _FMA), slp=True)
-            driver = _fast_loop_name(n_sections, channels)
-            source = _FAST_DRIVER.format(name=driver, steps=name)
-            _FAST_LOOPS[key] = _Kernel(_define(source, driver, {name: steps.py_func}), helpers=(steps,))
-    return _FAST_LOOPS[key]
+            for quantizes in (False, True):
+                driver = _fast_loop_name(n_sections, channels, "pcm" if quantizes else "loop")
+                source = _fast_driver_source(driver, name, quantizes)
+                helpers = (steps, _QUANTIZE) if quantizes else (steps,)
+                _FAST_LOOPS[key + (quantizes,)] = _Kernel(
+                    _define(source, driver, {name: steps.py_func}), helpers=helpers)
+    return _FAST_LOOPS[key + (bool(pcm),)]
 
 
 def fast_tables(sos: np.ndarray, channels: int = 1) -> tuple[np.ndarray, ...]:
@@ -1273,7 +1313,38 @@ def filter_unchecked(
     peak : float
         Largest magnitude of the output, as stored in ``out``.
     """
-    return filter_runner(sos.shape[0], x.shape[1], tables is not None)(sos, x, zi, out, tables)
+    if tables is None or not uses_fast_loop(sos.shape[0], x.shape[1]):
+        return filter_runner(sos.shape[0], x.shape[1], False)(sos, x, zi, out, None)
+    run = filter_runner(sos.shape[0], x.shape[1], True)
+    return _through_u_state(zi, lambda zu: run(sos, x, zu, out, tables))
+
+
+def _through_u_state(zi: np.ndarray, call: Callable) -> Any:
+    """``call(zu)`` on the state ``zi`` in u coordinates, written back into ``zi`` after."""
+    zu = to_u_state(zi)
+    result = call(zu)
+    zi[...] = from_u_state(zu)
+    return result
+
+
+def to_u_state(zi: np.ndarray) -> np.ndarray:
+    """A ``zi`` state (n_sections, channels, 2) in the fast loop's coordinates ``(z0, z0 + z1)``.
+
+    The fast runners (:func:`filter_runner` with ``fast``) read and write
+    their state in these coordinates, so a stream of blocks keeps it
+    exactly from one block to the next; :func:`from_u_state` gives ``zi``
+    back (within rounding: ``(z0 + z1) - z0`` need not be ``z1``).
+    """
+    zu = np.array(zi, dtype=np.float64)
+    zu[..., 1] += zu[..., 0]
+    return zu
+
+
+def from_u_state(zu: np.ndarray) -> np.ndarray:
+    """The ``zi`` state of a state in u coordinates (see :func:`to_u_state`)."""
+    zi = np.array(zu, dtype=np.float64)
+    zi[..., 1] -= zi[..., 0]
+    return zi
 
 
 _RUNNERS: dict[tuple[int, int, bool], Callable] = {}
@@ -1282,9 +1353,13 @@ _RUNNERS: dict[tuple[int, int, bool], Callable] = {}
 def filter_runner(n_sections: int, channels: int, fast: bool) -> Callable:
     """:func:`filter_unchecked` for one shape, with its loops looked up once.
 
-    Returns ``run(sos, x, zi, out, tables) -> (finite, peak)``, the same as
-    ``filter_unchecked`` for a cascade of ``n_sections`` and blocks of
-    ``channels`` (``tables`` given exactly when ``fast``). A caller that
+    Returns ``run(sos, x, state, out, tables) -> (finite, peak)``, the same
+    as ``filter_unchecked`` for a cascade of ``n_sections`` and blocks of
+    ``channels`` (``tables`` given exactly when ``fast``), except that where
+    the fast loop runs (``fast`` and :func:`uses_fast_loop`) ``state`` is in
+    u coordinates (:func:`to_u_state`): kept in them from block to block, the
+    output of a stream does not depend on where its blocks start, as long
+    as they start on whole steps of :data:`FAST_STEP` frames. A caller that
     filters block after block (:class:`dspeq.stream.Equalizer`) keeps it and
     saves the lookups on every block: on this machine, Python calls cost
     about 0.2 us each, a block of 4096 mono frames about 12 us.
@@ -1299,10 +1374,10 @@ def _make_runner(n: int, channels: int, fast: bool) -> Callable:
     if fast and uses_fast_loop(n, channels):
         loop = _fast_loop(n, channels).compiled
 
-        def run_fast(sos, x, zi, out, tables):
-            finite, peak, done = loop(x, out, zi, *tables)
+        def run_fast(sos, x, zu, out, tables):
+            finite, peak, done = loop(x, out, zu, *tables)
             if done < x.shape[0]:  # fewer than FAST_STEP frames left: the exact loop
-                ok, rest = filter_unchecked(sos, x[done:], zi, out[done:])
+                ok, rest = _exact_rest(sos, x[done:], zu, out[done:])
                 finite, peak = finite and ok, max(peak, rest)
             return finite, _stored_peak(peak, out.dtype)
         return run_fast
@@ -1326,6 +1401,14 @@ def _make_runner(n: int, channels: int, fast: bool) -> Callable:
     return run_passes
 
 
+def _exact_rest(sos: np.ndarray, x: np.ndarray, zu: np.ndarray, out: np.ndarray) -> tuple[bool, float]:
+    """The exact loop on the frames a fast loop left over, its state ``zu`` in u coordinates."""
+    zi = from_u_state(zu)
+    result = filter_unchecked(sos, x, zi, out)
+    zu[...] = to_u_state(zi)
+    return result
+
+
 def filter_quantize_unchecked(
     sos: np.ndarray, x: np.ndarray, zi: np.ndarray, out: np.ndarray,
     gain: float, bits: int, state: np.ndarray,
@@ -1337,10 +1420,10 @@ def filter_quantize_unchecked(
     ``x``'s dtype followed by :func:`quantize_tpdf` with the same ``gain``,
     ``bits`` and ``state``, without the intermediate array: the filter
     output of each chunk of :data:`FLUSH_EVERY` frames stays in a small
-    buffer in the cache and is quantized right away. (Channel counts that
-    need several passes, see :func:`channel_passes`, take the two steps,
-    and so do blocks that take the fast loop: ``tables`` as for
-    :func:`filter_unchecked`.)
+    buffer in the cache and is quantized right away, in the exact loops and
+    in the fast one (``tables`` as for :func:`filter_unchecked`). Channel
+    counts that need several passes (see :func:`channel_passes`) take the
+    two steps.
 
     Returns
     -------
@@ -1352,49 +1435,80 @@ def filter_quantize_unchecked(
         Largest magnitude of the filter output (as rounded to ``x``'s dtype),
         before the gain: the quantizer's peak is ``peak * abs(gain)``.
     """
-    params = _pcm_params(gain, bits)
-    if tables is not None and uses_fast_loop(sos.shape[0], x.shape[1]):
-        return _filter_then_quantize(sos, x, zi, out, gain, bits, state, tables)
-    long = sos.shape[0] > MAX_UNROLLED_SECTIONS
-    passes = () if long else _plan(sos.shape[0], x.shape[1], "pcm", x.dtype == np.float32)
-    if len(passes) != 1:
-        return _filter_then_quantize(sos, x, zi, out, gain, bits, state)
-    # The block's dither keys hold until sample 2**32 * (k // 2**32 + 1); a
-    # block that reaches past it is split there (the frame across it in two steps).
-    k, channels = int(state[1]), x.shape[1]
-    cut = (_EPOCH - k % _EPOCH) // channels
-    if cut < x.shape[0]:
-        pieces = ((0, cut, True), (cut, cut + 1, False), (cut + 1, x.shape[0], True))
-        return _pieces(sos, x, zi, out, gain, bits, state, pieces)
-    loop, c0, c1 = passes[0]
-    finite, peak, clips = loop(sos, x, out, zi, c0, c1, params, _block_keys(state[0], state[1]))
-    state[1] += np.uint64(x.size)
-    return finite, clips, _stored_peak(peak, x.dtype)
+    if tables is None or not uses_fast_loop(sos.shape[0], x.shape[1]):
+        return pcm_runner(sos.shape[0], x.shape[1], False)(sos, x, zi, out, gain, bits, state, None)
+    run = pcm_runner(sos.shape[0], x.shape[1], True)
+    return _through_u_state(zi, lambda zu: run(sos, x, zu, out, gain, bits, state, tables))
+
+
+_PCM_RUNNERS: dict[tuple[int, int, bool], Callable] = {}
+
+
+def pcm_runner(n_sections: int, channels: int, fast: bool) -> Callable:
+    """:func:`filter_quantize_unchecked` for one shape, as :func:`filter_runner` is for filtering.
+
+    Returns ``run(sos, x, state, out, gain, bits, dither_state, tables) ->
+    (finite, clips, peak)``, where ``state`` is in the coordinates of
+    ``filter_runner(n_sections, channels, fast)``: ``zi``, or u
+    (:func:`to_u_state`) where the fast loop runs.
+    """
+    key = (n_sections, channels, bool(fast) and uses_fast_loop(n_sections, channels))
+    if key not in _PCM_RUNNERS:
+        _PCM_RUNNERS[key] = _make_pcm_runner(*key)
+    return _PCM_RUNNERS[key]
+
+
+def _make_pcm_runner(n: int, channels: int, fast: bool) -> Callable:
+    filter_block = filter_runner(n, channels, fast)
+    fast_loop = _fast_loop(n, channels, pcm=True).compiled if fast else None
+
+    def two_steps(sos, x, state, out, gain, bits, dither, tables):
+        """Through a whole-block array: the filter, then :func:`quantize_tpdf`."""
+        y = np.empty_like(x)
+        finite, peak = filter_block(sos, x, state, y, tables)
+        if not finite:
+            return finite, 0, peak
+        return finite, quantize_tpdf(y, gain, bits, dither, out)[0], peak
+
+    def fast_pass(sos, x, state, out, gain, bits, dither, tables):
+        # The quantizer takes each chunk's dither keys itself (_quantize_span):
+        # no split at the key change, so the filter's steps stay on the block's grid.
+        finite, peak, clips, done = fast_loop(x, out, state, *tables, _pcm_params(gain, bits),
+                                              dither[0], dither[1])
+        dither[1] += np.uint64(done * channels)
+        if done < x.shape[0]:  # fewer than FAST_STEP frames left
+            ok, more, rest = two_steps(sos, x[done:], state, out[done:], gain, bits, dither, tables)
+            finite, clips, peak = finite and ok, clips + more, max(peak, rest)
+        return finite, clips, _stored_peak(peak, x.dtype)
+
+    def one_pass(sos, x, state, out, gain, bits, dither, tables):
+        passes = () if n > MAX_UNROLLED_SECTIONS else _plan(n, channels, "pcm", x.dtype == np.float32)
+        if len(passes) != 1:
+            return two_steps(sos, x, state, out, gain, bits, dither, tables)
+        loop, c0, c1 = passes[0]
+        finite, peak, clips = loop(sos, x, out, state, c0, c1, _pcm_params(gain, bits),
+                                   _block_keys(dither[0], dither[1]))
+        dither[1] += np.uint64(x.size)
+        return finite, clips, _stored_peak(peak, x.dtype)
+
+    def run(sos, x, state, out, gain, bits, dither, tables):
+        # The block's dither keys hold until sample 2**32 * (k // 2**32 + 1); a
+        # block that reaches past it is split there (the frame across it in two steps).
+        cut = (_EPOCH - int(dither[1]) % _EPOCH) // channels
+        if cut >= x.shape[0]:
+            return one_pass(sos, x, state, out, gain, bits, dither, tables)
+        finite, clips, peak = True, 0, 0.0
+        for start, stop, part in ((0, cut, one_pass), (cut, cut + 1, two_steps),
+                                  (cut + 1, x.shape[0], one_pass)):
+            ok, c, p = part(sos, x[start:stop], state, out[start:stop], gain, bits, dither, tables)
+            finite, clips, peak = finite and ok, clips + c, max(peak, p)
+        return finite, clips, peak
+    return fast_pass if fast else run
 
 
 def _stored_peak(peak: float, dtype: np.dtype) -> float:
     """A loop's float64 peak as the output stores it (rounded once more for float32 output)."""
     return float(np.float32(peak)) if dtype.char == "f" else peak
-
-
-def _filter_then_quantize(sos, x, zi, out, gain, bits, state, tables=None) -> tuple[bool, int, float]:
-    """:func:`filter_quantize_unchecked` in two steps, through a whole-block array."""
-    y = np.empty_like(x)
-    finite, peak = filter_unchecked(sos, x, zi, y, tables)
-    if not finite:
-        return finite, 0, peak
-    clips = quantize_tpdf(y, gain, bits, state, out)[0]
-    return finite, clips, peak
-
-
-def _pieces(sos, x, zi, out, gain, bits, state, pieces) -> tuple[bool, int, float]:
-    """:func:`filter_quantize_unchecked` frame range by frame range: (start, stop, fused)."""
-    finite, clips, peak = True, 0, 0.0
-    for start, stop, fused in pieces:
-        part = filter_quantize_unchecked if fused else _filter_then_quantize
-        ok, c, p = part(sos, x[start:stop], zi, out[start:stop], gain, bits, state)
-        finite, clips, peak = finite and ok, clips + c, max(peak, p)
-    return finite, clips, peak
 
 
 def uses_fast_loop(n_sections: int, channels: int) -> bool:
@@ -1547,7 +1661,8 @@ def quantize_tpdf(
     if out.dtype != np.int32 or out.shape != y.shape:
         raise ValueError(f"out must be int32 of shape {y.shape}, got {out.dtype} {out.shape}")
     flat = out.reshape(-1) if out.flags.c_contiguous else np.empty(out.size, np.int32)
-    clips, nans = _QUANTIZE(y.reshape(-1), *params, state[0], state[1], flat)
+    sums = np.empty(QUANTIZE_PIECE, dtype=np.uint32)
+    clips, nans = _QUANTIZE(y.reshape(-1), *params, state[0], state[1], flat, sums)
     if not out.flags.c_contiguous:
         out[...] = flat.reshape(out.shape)
     state[1] += np.uint64(y.size)

@@ -127,9 +127,13 @@ class Equalizer:
     (small matrices made in extended precision), so the eight outputs fill
     SIMD registers and only the state update is loop-carried
     (:mod:`dspeq._kernels`, "Fast path"); ``benchmarks/bench_kernel.py``
-    measures both modes against sosfilt (``docs/performance.md``). The state
-    after every block is still the ``zi`` of the signal so far (within
-    rounding), so blocks of any sizes and both modes can follow each other.
+    measures both modes against sosfilt (``docs/performance.md``). The fast
+    loop keeps its state between blocks in its own coordinates, so blocks
+    whose lengths are multiples of :data:`dspeq._kernels.FAST_STEP` (8)
+    frames give, bit for bit, the output of one call over the whole signal,
+    whatever their sizes (a block of another length ends with a few frames
+    of the exact loop, which may change later output within rounding);
+    :attr:`state` is the ``zi`` of the signal so far, within rounding.
     Accuracy, measured against the same recursion in extended precision
     (``tests/test_fastpath.py``, ``docs/performance.md``): the fast path's
     error is no larger than sosfilt's own, and where poles sit near z = 1
@@ -177,6 +181,9 @@ class Equalizer:
         fast = not exact and _kernels.uses_fast_loop(self._sos.shape[0], self._channels)
         self._tables = _kernels.fast_tables(self._coefficients, self._channels) if fast else None
         self._filter = _kernels.filter_runner(self._sos.shape[0], self._channels, fast)
+        self._filter_pcm = _kernels.pcm_runner(self._sos.shape[0], self._channels, fast)
+        # The runners' state: zi, or for the fast loop u coordinates (kept in
+        # them between blocks; see dspeq._kernels.to_u_state).
         self._zi = np.zeros((self._sos.shape[0], self._channels, 2))
         self._peak = 0.0
 
@@ -198,7 +205,7 @@ class Equalizer:
     @property
     def state(self) -> np.ndarray:
         """Copy of the filter state, shape (n_sections, channels, 2)."""
-        return self._zi.copy()
+        return self._zi.copy() if self._tables is None else _kernels.from_u_state(self._zi)
 
     def reset(self) -> None:
         """Set the filter state to zero (as before the first block)."""
@@ -296,7 +303,7 @@ class Equalizer:
                              f"frames x {self._channels} channels, got {_describe(out)}")
         drawn = int(dither_state[1])
         zi = self._zi.copy()
-        finite, clips, peak = _kernels.filter_quantize_unchecked(
+        finite, clips, peak = self._filter_pcm(
             self._coefficients, frames, zi, out.reshape(frames.shape), gain, bits, dither_state,
             self._tables)
         if not finite:

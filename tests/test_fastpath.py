@@ -57,6 +57,18 @@ def run(eq, x, sizes):
     return np.concatenate(out)
 
 
+def run_pcm(x, sizes):
+    """``x`` through a fast Equalizer's process_pcm (24 bits, gain 0.5), blocks cycling through ``sizes``."""
+    eq = Equalizer(SLOW_SOS, x.shape[1], exact=False)
+    state, out = K.seed_state(4), np.empty(x.shape, np.int32)
+    i, k = 0, 0
+    while i < len(x):
+        n = min(sizes[k % len(sizes)], len(x) - i)
+        eq.process_pcm(x[i:i + n], 0.5, 24, state, out[i:i + n])
+        i, k = i + n, k + 1
+    return out
+
+
 def relative(a, b):
     return float(np.max(np.abs(np.asarray(a, np.float64) - np.asarray(b, np.float64)))
                  / np.max(np.abs(np.asarray(b, np.float64))))
@@ -237,19 +249,40 @@ def test_flush_keeps_tails_out_of_subnormals():
     assert np.max(np.abs(y - ref)) < 1e-15
 
 
-def test_process_pcm_equals_process_then_quantize():
-    x = (0.3 * np.random.default_rng(7).standard_normal(9000)).astype(np.float32)
-    a, b = Equalizer(SLOW_SOS, exact=False), Equalizer(SLOW_SOS, exact=False)
+@pytest.mark.parametrize("channels, dtype", [(1, np.float32), (2, np.float32), (2, np.float64)])
+@pytest.mark.parametrize("first_sample", [0, 2**32 - 5001])
+def test_process_pcm_equals_process_then_quantize(channels, dtype, first_sample):
+    # The fast loop quantizes chunk by chunk; the same samples as process()
+    # then quantize_tpdf, over chunk ends, leftover frames, and (second case)
+    # the dither's key change at sample 2**32 inside a block.
+    x = (0.3 * np.random.default_rng(7).standard_normal((9000, channels))).astype(dtype)
+    a, b = Equalizer(SLOW_SOS, channels, exact=False), Equalizer(SLOW_SOS, channels, exact=False)
     sa, sb = K.seed_state(2), K.seed_state(2)
+    sa[1] = sb[1] = first_sample
     for lo, hi in ((0, 5), (5, 4000), (4000, 9000)):
-        got = np.empty(hi - lo, np.int32)
+        got = np.empty((hi - lo, channels), np.int32)
         clips, peak = a.process_pcm(x[lo:hi], 0.05, 24, sa, got)
         y = b.process(x[lo:hi])
-        want = np.empty((hi - lo, 1), np.int32)
-        assert (clips, peak) == K.quantize_tpdf(y[:, None], 0.05, 24, sb, want)
-        assert np.array_equal(got, want[:, 0])
+        want = np.empty_like(got)
+        assert (clips, peak) == K.quantize_tpdf(y, 0.05, 24, sb, want)
+        assert np.array_equal(got, want)
         assert a.last_peak == np.abs(y).max()  # numpy reference
     assert np.array_equal(a.state, b.state) and np.array_equal(sa, sb)
+
+
+@pytest.mark.parametrize("channels, dtype", [(1, np.float64), (2, np.float32), (2, np.float64)])
+def test_blocks_of_whole_steps_give_the_output_of_one_call(channels, dtype):
+    # The fast loop keeps its state in u coordinates between blocks, so blocks
+    # of any multiple of FAST_STEP frames give one call's output bit for bit,
+    # filtered and quantized; a block of another length ends in the exact loop.
+    x = (0.3 * np.random.default_rng(9).standard_normal((24_003, channels))).astype(dtype)
+    one = Equalizer(SLOW_SOS, channels, exact=False).process(x)
+    eq = Equalizer(SLOW_SOS, channels, exact=False)
+    assert np.array_equal(run(eq, x, [8, 4096, 1000, 65536]), one)
+    assert np.array_equal(run_pcm(x, [x.shape[0]]), run_pcm(x, [1000, 8, 4096]))
+    # As a check on the claim: blocks that do not start on whole steps change later output.
+    odd = run(Equalizer(SLOW_SOS, channels, exact=False), x, [1001])
+    assert not np.array_equal(odd, one) and np.max(np.abs(odd - one)) <= 1e-6 * np.max(np.abs(one))
 
 
 def _python_and_compiled_agree(frames: int, channels: int, n_sections: int = 2,

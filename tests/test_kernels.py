@@ -522,7 +522,8 @@ def test_pure_python_quantizer_equals_compiled():
         out = np.empty(y.shape, np.int32)
         with np.errstate(over="ignore"):  # uint arithmetic wraps on purpose
             # 40 samples before the key change at 2**32: both keys are used.
-            clips, nans = func(y, *K._pcm_params(1.0, 16), np.uint64(77), np.uint64(2**32 - 40), out)
+            clips, nans = func(y, *K._pcm_params(1.0, 16), np.uint64(77), np.uint64(2**32 - 40), out,
+                               np.empty(K.QUANTIZE_PIECE, np.uint32))
         results.append((out, int(clips), int(nans)))
     assert np.array_equal(results[0][0], results[1][0])
     assert results[0][1:] == results[1][1:] and results[0][1] > 0 and results[0][2] == 1
