@@ -366,6 +366,7 @@ def quantize_table(sos: np.ndarray, rounds: int) -> list[str]:
     out = np.empty(x.shape, np.int32)
     rng = np.random.default_rng(3)
     block = 65536
+    tables = _kernels.fast_tables(sos, channels)
 
     def blocks(step: Callable[[slice, np.ndarray, np.ndarray], object]) -> Callable[[], None]:
         def run() -> None:
@@ -381,6 +382,11 @@ def quantize_table(sos: np.ndarray, rounds: int) -> list[str]:
             _kernels.quantize_tpdf(y[s], 1.0, 24, st, out[s])),
         "fused filter + quantize (one pass)": lambda s, zi, st: _kernels.filter_quantize_unchecked(
             sos, x[s], zi, out[s], 1.0, 24, st),
+        "fast filter only (exact=False)": lambda s, zi, st: _kernels.filter_unchecked(
+            sos, x[s], zi, y[s], tables),
+        "fast fused filter + quantize (the batch's pass)": lambda s, zi, st:
+            _kernels.filter_quantize_unchecked(sos, x[s], zi, out[s], 1.0, 24, st, tables),
+        "quantize_tpdf alone": lambda s, zi, st: _kernels.quantize_tpdf(y[s], 1.0, 24, st, out[s]),
         "filter, then numpy dither + quantize": lambda s, zi, st: (
             _kernels.filter_unchecked(sos, x[s], zi, y[s]), numpy_quantize(y[s], rng, out[s])),
         "peak_abs alone": lambda s, zi, st: _kernels.peak_abs(y[s]),
