@@ -361,7 +361,7 @@ def numpy_quantize(y: np.ndarray, rng: np.random.Generator, out: np.ndarray) -> 
 
 def quantize_table(sos: np.ndarray, rounds: int) -> list[str]:
     frames, channels = 10 * FS, 2
-    x = (0.3 * np.random.default_rng(2).standard_normal((frames, channels))).astype(np.float32)
+    x = (0.1 * np.random.default_rng(2).standard_normal((frames, channels))).astype(np.float32)
     y = np.empty_like(x)
     out = np.empty(x.shape, np.int32)
     rng = np.random.default_rng(3)

@@ -422,14 +422,18 @@ def _numpy_quantize(y, gain, bits, seed):
 
 @pytest.mark.parametrize("bits", [8, 16, 24, 32])
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
-def test_quantize_matches_numpy_reference(bits, dtype):
-    y = (np.random.default_rng(bits).uniform(-1.2, 1.2, (3000, 2))).astype(dtype)
+@pytest.mark.parametrize("amplitude", [1.2, 0.5])
+def test_quantize_matches_numpy_reference(bits, dtype, amplitude):
+    # 1.2: every piece of QUANTIZE_PIECE samples clips (the clamping loop);
+    # 0.5: none does (the loop that assumes so).
+    y = (np.random.default_rng(bits).uniform(-amplitude, amplitude, (3000, 2))).astype(dtype)
     out = np.empty(y.shape, np.int32)
     state = K.seed_state(99)
     clips, peak = K.quantize_tpdf(y, 0.9, bits, state, out)
     expected, expected_clips = _numpy_quantize(y, 0.9, bits, 99)
     assert np.array_equal(out, expected)
-    assert clips == expected_clips > 0
+    assert clips == expected_clips
+    assert (clips > 0) == (amplitude > 1)
     assert peak == np.max(np.abs(y.astype(np.float64) * 0.9))
     assert state[1] == y.size
 
@@ -446,6 +450,36 @@ def test_quantize_continuation_equals_one_call():
     again = np.empty(y.shape, np.int32)
     K.quantize_tpdf(y, 1.0, 16, K.seed_state(8), again)
     assert np.array_equal(whole, again)
+
+
+def test_only_pieces_with_overs_or_nan_are_clamped():
+    # One over in the second piece, one NaN in the fourth, the rest well inside.
+    y = np.random.default_rng(5).uniform(-0.5, 0.5, (3 * K.QUANTIZE_PIECE, 2))
+    y.reshape(-1)[K.QUANTIZE_PIECE + 7] = 1.5
+    y.reshape(-1)[3 * K.QUANTIZE_PIECE + 1] = np.nan
+    out = np.empty(y.shape, np.int32)
+    clips, peak = K.quantize_tpdf(y, 1.0, 24, K.seed_state(4), out)
+    expected, _ = _numpy_quantize(np.nan_to_num(y), 1.0, 24, 4)
+    flat, nan_at = out.reshape(-1), 3 * K.QUANTIZE_PIECE + 1
+    assert clips == 1 and np.isnan(peak) and flat[nan_at] == 0
+    assert np.array_equal(np.delete(flat, nan_at), np.delete(expected.reshape(-1), nan_at))
+    assert flat[K.QUANTIZE_PIECE + 7] == (2**23 - 1) << 8
+
+
+@pytest.mark.parametrize("func", ["py_func", "compiled"])
+def test_clip_threshold_is_the_rounded_value(func):
+    # Without dither (as at 32 bits), values between the top code and half an
+    # LSB above it round to the top code: not clips; half an LSB above rounds
+    # (ties to even) to 32768: a clip. At the bottom, -32768.5 rounds to -32768.
+    scale, lo, hi, lsb, _ = K._pcm_params(1.0, 16)
+    v = np.array([32767.0, 32767.4, 32767.5, 32769.0, -32768.0, -32768.5, -32768.6, 5.5]) / scale
+    out = np.empty(v.size, np.int32)
+    run = getattr(K._QUANTIZE_RUN, func)
+    with np.errstate(over="ignore"):  # uint arithmetic wraps on purpose
+        clips, nans = run(v, scale, lo, hi, lsb, 0.0, np.uint32(0), np.uint32(0), out,
+                          np.empty(K.QUANTIZE_PIECE, np.int32))
+    assert (int(clips), int(nans)) == (3, 0)
+    assert list(out >> 16) == [32767, 32767, 32767, 32767, -32768, -32768, -32768, 6]
 
 
 def test_clip_count_exact_and_left_justified():
@@ -523,7 +557,7 @@ def test_pure_python_quantizer_equals_compiled():
         with np.errstate(over="ignore"):  # uint arithmetic wraps on purpose
             # 40 samples before the key change at 2**32: both keys are used.
             clips, nans = func(y, *K._pcm_params(1.0, 16), np.uint64(77), np.uint64(2**32 - 40), out,
-                               np.empty(K.QUANTIZE_PIECE, np.uint32))
+                               np.empty(K.QUANTIZE_PIECE, np.int32))
         results.append((out, int(clips), int(nans)))
     assert np.array_equal(results[0][0], results[1][0])
     assert results[0][1:] == results[1][1:] and results[0][1] > 0 and results[0][2] == 1
