@@ -946,6 +946,11 @@ def _fast_step_lines(n_state: int, channels: int, ind: str) -> list[str]:
     lines = [f"{ind}{hint}({a}, i + {d})" for d in ahead for hint, a in (("_prefetch", "xf"),
                                                                             ("_prefetch_write", "of"))]
     lines += [f"{ind}x{j}_{c} = np.float64(xf[i + U{j * channels + c}])" for j, c in outputs]
+    for c in chans:
+        for m in range(n_state):
+            from_input = _fma_sum([(f"GT[{j}, {m}]", f"x{j}_{c}") for j in frames])
+            from_state = _fma_sum([(f"DT[{q}, {m}]", f"u{q}_{c}") for q in range(n_state)])
+            lines.append(f"{ind}t{m}_{c} = (u{m}_{c} + {from_input}) + {from_state}")
     for k, c in outputs:
         col = k * channels + c
         from_state = _fma_sum([(f"CT[{m}, {col}]", f"u{m}_{c}") for m in range(n_state)])
@@ -954,11 +959,6 @@ def _fast_step_lines(n_state: int, channels: int, ind: str) -> list[str]:
         reach = FAST_STEP if 2 * k >= FAST_STEP else FAST_STEP // 2
         from_input = _fma_sum([(f"HT[{j}, {col}]", f"x{j}_{c}") for j in range(reach)])
         lines.append(f"{ind}y{k}_{c} = {from_state} + {from_input}")
-    for c in chans:
-        for m in range(n_state):
-            from_input = _fma_sum([(f"GT[{j}, {m}]", f"x{j}_{c}") for j in frames])
-            from_state = _fma_sum([(f"DT[{q}, {m}]", f"u{q}_{c}") for q in range(n_state)])
-            lines.append(f"{ind}t{m}_{c} = (u{m}_{c} + {from_input}) + {from_state}")
     lines += [f"{ind}u{m}_{c} = t{m}_{c}" for c in chans for m in range(n_state)]
     lines += [f"{ind}a{k}_{c} = abs(y{k}_{c})" for k, c in outputs]
     lines += [f"{ind}pk{k}_{c} = a{k}_{c} if a{k}_{c} > pk{k}_{c} else pk{k}_{c}" for k, c in outputs]
@@ -1176,8 +1176,8 @@ def _mono_steps_intrinsic(n_sections: int):
             ustate = [splat(builder, u, m, n_state) for m in range(n_state)]
             def vsum(fma, rows_, splats):
                 return _vector_sum(builder, fma, list(zip(rows_, splats, strict=True)))
-            y = builder.fadd(vsum(fma_w, ct, uw), vsum(fma_w, ht, xw))
             t = builder.fadd(builder.fadd(u, vsum(fma_s, gt, xs)), vsum(fma_s, dt, ustate))
+            y = builder.fadd(vsum(fma_w, ct, uw), vsum(fma_w, ht, xw))
             a = builder.call(fabs, [y])
             pk_next = builder.select(builder.fcmp_ordered(">", a, pk), a, pk)
             yo = y if ot == d else builder.fptrunc(y, ir.VectorType(ot, width))
