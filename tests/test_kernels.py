@@ -549,8 +549,10 @@ def test_quantize_nan_and_argument_checks():
 
 
 def test_pure_python_quantizer_equals_compiled():
-    y = np.random.default_rng(6).uniform(-1.1, 1.1, 80)
-    y[7] = np.nan
+    # Pieces with no over (the loop that assumes so) and a last one with an
+    # over and a NaN (the clamping loop).
+    y = np.random.default_rng(6).uniform(-0.9, 0.9, 2 * K.QUANTIZE_PIECE + 80)
+    y[-7], y[-5] = np.nan, 1.1
     results = []
     for func in (K._QUANTIZE.py_func, K._QUANTIZE.compiled):
         out = np.empty(y.shape, np.int32)
