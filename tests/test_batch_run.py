@@ -316,6 +316,31 @@ def test_warming_up_before_the_fork_is_best_effort(tmp_path, small_tree):
     assert process_task(tasks[0]).status == "done"
 
 
+_WARM_SCRIPT = """
+import sys
+from dspeq import _kernels as K
+from dspeq.batch import Settings, plan, quick_job, run
+task = plan(quick_job(sys.argv[1], sys.argv[2], Settings(curve="riaa", gain_db=0.0))).tasks[0]
+run._warm(task)
+print(sorted((key, str(sig[0].dtype)) for key, loop in K._FAST_LOOPS.items()
+             if loop._compiled is not None for sig in loop._compiled.signatures))
+"""
+
+
+def test_warming_up_loads_the_loops_the_batch_runs(tmp_path, small_tree):
+    # In a fresh interpreter: the forked workers inherit what _warm loaded, so it
+    # must be the loops process_task calls (for a stereo 24-bit file: the fast
+    # loop, float32, both the filter alone and the fused quantizer).
+    import subprocess
+    import sys
+
+    done = subprocess.run([sys.executable, "-c", _WARM_SCRIPT, str(small_tree), str(tmp_path / "out")],
+                          capture_output=True, text=True, check=True)
+    n_sections = dspeq.design("riaa", 48000).sos.shape[0]
+    assert done.stdout.strip() == str([((n_sections, 2, False), "float32"),
+                                       ((n_sections, 2, True), "float32")])
+
+
 @pytest.mark.slow
 def test_dask_local_cluster_of_two_workers(tmp_path, small_tree):
     distributed = pytest.importorskip("distributed")

@@ -327,18 +327,26 @@ def _stream(r: _Render, eq) -> Iterable[np.ndarray]:
     return r.counted
 
 
+def _equalizer(design, channels: int):
+    """The batch's Equalizer for a (not oversampled) design.
+
+    Mono and stereo take the fast loop (exact=False): within rounding of
+    sosfilt (1e-15 of the peak for RIAA at 96 kHz, far below the LSB of any
+    output format), and no further from the exact recursion than sosfilt is.
+    """
+    from ..stream import Equalizer
+
+    return Equalizer(design, channels=channels, exact=False)
+
+
 def _render(r: _Render, final: Path) -> dict[str, Any]:
     from .. import _kernels
     from ..oversample import AlignedStream, OversampledEqualizer, is_oversampled
-    from ..stream import Equalizer
 
     s = r.task.settings
     over = is_oversampled(r.design)
-    # Mono and stereo take the fast loop (exact=False): within rounding of
-    # sosfilt (1e-15 of the peak for RIAA at 96 kHz, far below the LSB of any
-    # output format), and no further from the exact recursion than sosfilt is.
     eq = (AlignedStream(OversampledEqualizer(r.design, channels=r.source.channels)) if over
-          else Equalizer(r.design, channels=r.source.channels, exact=False))
+          else _equalizer(r.design, r.source.channels))
     if not over and _kernels.uses_fast_loop(r.design.sos.shape[0], r.source.channels):
         r.filter_loop = "fast"
     if s.gain_db is not None or r.spec.is_float:
@@ -528,7 +536,6 @@ def _warm(task: Task) -> None:
     """
     from .. import _kernels
     from ..oversample import is_oversampled
-    from ..stream import Equalizer
 
     try:
         with Source(task.input_path) as src:
@@ -540,7 +547,7 @@ def _warm(task: Task) -> None:
         return
     x = np.zeros((_kernels.FLUSH_EVERY, channels), dtype)
     pcm = np.empty(x.shape, np.int32)
-    eq = Equalizer(design, channels=channels)
+    eq = _equalizer(design, channels)                  # the loops _render will run
     y = eq.process(x)                                   # peak-safe: filter, then …
     _kernels.quantize_tpdf(y, 1.0, 24, _kernels.seed_state(0), pcm)  # … quantize
     _kernels.peak_abs(y)
