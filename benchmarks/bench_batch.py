@@ -126,11 +126,16 @@ def spread(values: list[float], digits: int = 2) -> str:
     return f"{statistics.median(values):.{digits}f} ({min(values):.{digits}f}–{max(values):.{digits}f})"
 
 
+def warm_up(work: Path) -> None:
+    """Both modes once on the short warm-up file: the design for 96 kHz, the kernels compiled or loaded."""
+    for mode in ("fixed", "auto"):
+        run_dspeq(work / "warm", work / f"out-warm-{mode}", mode)
+
+
 def per_file_table(work: Path, rounds: int) -> list[str]:
     src_dir = work / "one"
     src = next(src_dir.iterdir())
-    for mode in ("fixed", "auto"):            # warm: design for 96 kHz, kernels compiled or loaded
-        run_dspeq(work / "warm", work / f"out-warm-{mode}", mode)
+    warm_up(work)
     results: dict[str, list[tuple[float, float]]] = {"bare": [], "fixed": [], "auto": []}
     for _ in range(rounds):
         (work / "bare.flac").unlink(missing_ok=True)   # outside the timing, as for dspeq's folder
@@ -225,65 +230,99 @@ def _timed_blocks(clock: Clock, label: str, blocks):
         yield block
 
 
-def steps_table(work: Path) -> list[str]:
-    """Each step of both modes, timed inside one single-threaded run that mirrors process_task."""
+def _int32_blocks(source):
+    """The int32 blocks :func:`bare` reads, one reused buffer."""
+    buf = np.empty((BLOCK, source.channels), np.int32)
+    while len(block := source.read(BLOCK, dtype="int32", out=buf)):
+        yield block
+
+
+def _bare_steps(clock: Clock, src: Path, out: Path) -> None:
+    """:func:`bare`, each step timed (the close finishes the encoding and syncs)."""
+    import soundfile as sf
+
+    with sf.SoundFile(src) as s:
+        o = sf.SoundFile(out, "w", s.samplerate, s.channels, "PCM_24", format="FLAC")
+        for block in _timed_blocks(clock, "decode (libsndfile)", _int32_blocks(s)):
+            clock("encode (libsndfile)", o.write, block)
+        clock("finish encoding and fsync (soundfile close)", o.close)
+
+
+def _dspeq_steps(clock: Clock, src: Path, out: Path, mode: str, spool_path: Path) -> int:
+    """The steps of process_task in ``mode``, each timed; returns the samples processed."""
     from dspeq import design
     from dspeq.batch import audio
-    from dspeq.stream import Equalizer
+    from dspeq.batch.run import _equalizer
 
+    eq = _equalizer(design("riaa", FS), 2)     # as process_task makes it
+    quant = audio.Quantizer(24, 1.0, 1)
+    spec = audio.OutputSpec("flac", "int24", "FLAC", "PCM_24", 24)
+    clock("SHA-256 of the input", audio.sha256_file, src)
+    with audio.Source(src) as source:
+        sink = audio.Sink(out, spec, FS, 2, quant)
+        blocks = _timed_blocks(clock, "decode (libsndfile)", source.blocks(BLOCK, np.float32))
+        if mode == "fixed":
+            for block in blocks:
+                pcm = clock("filter + dither + quantize (one kernel pass)", quant.filtered, eq, block)
+                clock("encode (libsndfile)", sink.write_pcm, pcm)
+        else:
+            spool = audio.Spool(source.frames, 2, np.float32, 64 << 20, spool_path)
+            y = np.empty((BLOCK, 2), np.float32)
+            for block in blocks:
+                filtered = clock("filter (+ peak)", eq.process, block, y[:len(block)])
+                clock("spool write (copy to its writer thread)", spool.append, filtered)
+            for block in _timed_blocks(clock, "spool read (after the last writes)", spool.blocks(BLOCK)):
+                pcm = clock("dither + quantize", quant, block)
+                clock("encode (libsndfile)", sink.write_pcm, pcm)
+            spool.close()
+        clock("finish encoding (last frames, STREAMINFO)", getattr, sink, "audio_md5")
+        clock("fsync of the output, its SHA-256 beside it (commit)", sink.commit, None)
+    return source.frames_read * 2
+
+
+def steps_table(work: Path) -> list[str]:
+    """Each step of bare and both modes, timed inside one single-threaded run that mirrors each."""
     src = next((work / "one").iterdir())
-    eq_sos = design("riaa", FS)
+    warm_up(work)
     rows = [
         f"### Where the time goes ({_minutes(src):g} min file, one run each, wall seconds)",
         "",
-        "The steps of `process_task`, run one after the other in one thread and timed each "
-        "(in the real run the input's SHA-256 runs in a thread beside the decoding). The "
-        "spool's file writes run in its own thread here as in the real run: its row is the "
-        "copy handed to that thread, and the read row includes waiting for the last writes. The "
-        "sample MD5 of FLAC output is the one the encoder computes anyway (read from "
-        "STREAMINFO), so it costs nothing.",
+        "The steps of the bare run and of `process_task`, run one after the other in one thread "
+        "and timed each (in the real run the input's SHA-256 runs in a thread beside the "
+        "decoding). The spool's file writes run in its own thread here as in the real run: its "
+        "row is the copy handed to that thread, and the read row includes waiting for the last "
+        "writes. The sample MD5 of FLAC output is the one the encoder computes anyway (read from "
+        "STREAMINFO), so it costs nothing. The encoder's row differs between the bare run and "
+        "dspeq's with the content it encodes (the filtered, dithered signal against the "
+        "transfer itself).",
         "",
-        "| step | fixed gain (s) | peak-safe (s) | per sample (ns), fixed |",
-        "|---|---:|---:|---:|",
+        "| step | bare (s) | fixed gain (s) | peak-safe (s) | per sample (ns), fixed |",
+        "|---|---:|---:|---:|---:|",
     ]
-    spent = {}
-    for mode in ("fixed", "auto"):
+    spent: dict[str, dict[str, float]] = {}
+    for mode in ("bare", "fixed", "auto"):
         settle()
         clock = Clock()
         out = work / f"steps-{mode}.flac"
-        eq = Equalizer(eq_sos, channels=2, exact=False)   # as process_task does for stereo
-        quant = audio.Quantizer(24, 1.0, 1)
-        spec = audio.OutputSpec("flac", "int24", "FLAC", "PCM_24", 24)
-        clock("SHA-256 of the input", audio.sha256_file, src)
-        with audio.Source(src) as source:
-            sink = audio.Sink(out, spec, FS, 2, quant)
-            blocks = _timed_blocks(clock, "decode (libsndfile, float32)", source.blocks(BLOCK, np.float32))
-            if mode == "fixed":
-                for block in blocks:
-                    pcm = clock("filter + dither + quantize (one kernel pass)", quant.filtered, eq, block)
-                    clock("encode (libsndfile)", sink.write_pcm, pcm)
-            else:
-                spool = audio.Spool(source.frames, 2, np.float32, 64 << 20, work / "steps.spool")
-                y = np.empty((BLOCK, 2), np.float32)
-                for block in blocks:
-                    filtered = clock("filter (+ peak)", eq.process, block, y[:len(block)])
-                    clock("spool write (copy to its writer thread)", spool.append, filtered)
-                for block in _timed_blocks(clock, "spool read (after the last writes)", spool.blocks(BLOCK)):
-                    pcm = clock("dither + quantize", quant, block)
-                    clock("encode (libsndfile)", sink.write_pcm, pcm)
-                spool.close()
-            clock("finish encoding (last frames, STREAMINFO)", getattr, sink, "audio_md5")
-            clock("fsync of the output, its SHA-256 beside it (commit)", sink.commit, None)
+        if mode == "bare":
+            _bare_steps(clock, src, out)
+        else:
+            samples = _dspeq_steps(clock, src, out, mode, work / "steps.spool")
         spent[mode] = clock.spent
-        samples = source.frames_read * 2
         out.unlink()
-    labels = list(dict.fromkeys([*spent["fixed"], *spent["auto"]]))
+    labels = list(dict.fromkeys([*spent["fixed"], *spent["auto"], *spent["bare"]]))
+
+    def cell(mode: str, label: str) -> str:
+        value = spent[mode].get(label)
+        return "" if value is None else f"{value:.2f}"
+
     for label in labels:
-        f, a = spent["fixed"].get(label), spent["auto"].get(label)
-        rows.append(f"| {label} | {'' if f is None else f'{f:.2f}'} | {'' if a is None else f'{a:.2f}'} "
+        f = spent["fixed"].get(label)
+        rows.append(f"| {label} | {cell('bare', label)} | {cell('fixed', label)} | {cell('auto', label)} "
                     f"| {'' if f is None else f'{f / samples * 1e9:.1f}'} |")
-    rows.append(f"| **total** | {sum(spent['fixed'].values()):.2f} | {sum(spent['auto'].values()):.2f} "
-                f"| {sum(spent['fixed'].values()) / samples * 1e9:.1f} |")
+    total = {mode: sum(spent[mode].values()) for mode in spent}
+    rows.append(f"| **total** | {total['bare']:.2f} | {total['fixed']:.2f} | {total['auto']:.2f} "
+                f"| {total['fixed'] / samples * 1e9:.1f} |")
     return rows
 
 
