@@ -1073,18 +1073,20 @@ def _mono_steps_intrinsic(n_sections: int):
     stack buffer), the state's splats by shuffles, and every sum is the scalar
     code's chain of fused multiply-adds, so the results are the same bit for
     bit (tests/test_fastpath.py). The table rows are loaded once, before the
-    loop. The input terms that the scalar code leaves out as zero above the
-    diagonal (``HT[j, k]`` for ``k < j``) are included: for finite input they
-    add exact zeros. (An infinite input can make those early outputs NaN
-    instead of finite; the block's state is non-finite either way, and the
-    caller reports it.)
+    loop. Each half of the eight outputs is a vector of its own, so that the
+    first half sums only the first half of the input, as the scalar code does
+    (``HT[j, k]`` is zero for ``k < j``): on a CPU with 128-bit units that
+    leaves out a ninth of the step's fused multiply-adds (measured on the
+    first-generation EPYC: float64 3.05 -> 2.86 ns/sample, float32 3.67 ->
+    3.21). The two halves share one peak vector (a register fewer in a loop
+    that spills).
     """
     from llvmlite import ir
     from numba import types as nbtypes
     from numba.core import cgutils
     from numba.extending import intrinsic
 
-    n_state, width = 2 * n_sections, FAST_STEP
+    n_state, width, half = 2 * n_sections, FAST_STEP, FAST_STEP // 2
     d, i64, i32 = ir.DoubleType(), ir.IntType(64), ir.IntType(32)
 
     def splat(builder, v, lane, lanes):
@@ -1116,11 +1118,15 @@ def _mono_steps_intrinsic(n_sections: int):
         loads = [builder.load(builder.gep(lanes, [i64(j)])) for j in range(width)]
         return [splat(builder, builder.insert_element(one, v, i32(0)), 0, width) for v in loads]
 
-    def rows(builder, array, n_rows, n_cols):
-        """The rows of a C-contiguous (n_rows, n_cols) float64 table as vectors."""
-        vector = ir.VectorType(d, n_cols).as_pointer()
-        return [builder.load(builder.bitcast(builder.gep(array.data, [i64(r * n_cols)]), vector), align=8)
-                for r in range(n_rows)]
+    def rows(builder, array, n_rows, n_cols, first=0, lanes=None):
+        """Rows of a C-contiguous (n_rows, n_cols) float64 table as vectors.
+
+        Each of ``lanes`` columns (default all) from column ``first`` on.
+        """
+        lanes = n_cols if lanes is None else lanes
+        vector = ir.VectorType(d, lanes).as_pointer()
+        return [builder.load(builder.bitcast(builder.gep(array.data, [i64(r * n_cols + first)]), vector),
+                             align=8) for r in range(n_rows)]
 
     @intrinsic
     def mono_steps(typingctx, x, out, start, n, us, HT, CT, GT, DT):
@@ -1133,14 +1139,17 @@ def _mono_steps_intrinsic(n_sections: int):
                 context.make_array(t)(context, builder, v) if isinstance(t, nbtypes.Array) else v
                 for t, v in zip(signature.args, args, strict=True)]
             start_v, n_v = args[2], args[3]
-            vw, vs = ir.VectorType(d, width), ir.VectorType(d, n_state)
+            vw, vs, vh = ir.VectorType(d, width), ir.VectorType(d, n_state), ir.VectorType(d, half)
             xt = context.get_value_type(signature.args[0].dtype)
             ot = context.get_value_type(signature.args[1].dtype)
             module = builder.module
-            fma_w = vector_intrinsic(module, "fma", vw, 3)
             fma_s = vector_intrinsic(module, "fma", vs, 3)
-            fabs = vector_intrinsic(module, "fabs", vw, 1)
-            ht, ct = rows(builder, tables[0], width, width), rows(builder, tables[1], n_state, width)
+            fma_h = vector_intrinsic(module, "fma", vh, 3)
+            fabs = vector_intrinsic(module, "fabs", vh, 1)
+            # each half of the outputs a vector: the first half sums only the first half of the input
+            ht = [rows(builder, tables[0], half, width, 0, half),
+                  rows(builder, tables[0], width, width, half, half)]
+            ct = [rows(builder, tables[1], n_state, width, first, half) for first in (0, half)]
             gt, dt = rows(builder, tables[2], width, n_state), rows(builder, tables[3], n_state, n_state)
             u0 = ir.Constant(vs, None)
             for m in range(n_state):
@@ -1156,11 +1165,11 @@ def _mono_steps_intrinsic(n_sections: int):
             i = builder.phi(i64)
             k = builder.phi(i64)
             u = builder.phi(vs)
-            pk = builder.phi(vw)
+            pk = builder.phi(vh)
             i.add_incoming(start_v, entry)
             k.add_incoming(ir.Constant(i64, 0), entry)
             u.add_incoming(u0, entry)
-            pk.add_incoming(ir.Constant(vw, None), entry)
+            pk.add_incoming(ir.Constant(vh, None), entry)
             builder.cbranch(builder.icmp_signed("<", k, n_v), body, done)
             builder.position_at_end(body)
             ahead = builder.add(i, i64(PREFETCH_AHEAD))
@@ -1172,17 +1181,23 @@ def _mono_steps_intrinsic(n_sections: int):
                 xw = [splat(builder, xv, j, width) for j in range(width)]
             else:
                 xw = converted_splats(builder, builder.fpext(xv, vw), buf)
-            low = ir.Constant(ir.VectorType(i32, n_state), list(range(n_state)))
-            xs = [builder.shuffle_vector(v, ir.Constant(vw, None), low) for v in xw]
-            uw = [splat(builder, u, m, width) for m in range(n_state)]
+            def narrow(v, lanes):
+                return builder.shuffle_vector(v, ir.Constant(vw, None), ir.Constant(
+                    ir.VectorType(i32, lanes), list(range(lanes))))
+            xs, xh = [narrow(v, n_state) for v in xw], [narrow(v, half) for v in xw]
+            uh = [splat(builder, u, m, half) for m in range(n_state)]
             ustate = [splat(builder, u, m, n_state) for m in range(n_state)]
             def vsum(fma, rows_, splats):
                 return _vector_sum(builder, fma, list(zip(rows_, splats, strict=True)))
             # the state after the step first, as in the scalar source (_fast_step_lines)
             t = builder.fadd(builder.fadd(u, vsum(fma_s, gt, xs)), vsum(fma_s, dt, ustate))
-            y = builder.fadd(vsum(fma_w, ct, uw), vsum(fma_w, ht, xw))
-            a = builder.call(fabs, [y])
-            pk_next = builder.select(builder.fcmp_ordered(">", a, pk), a, pk)
+            y_lo, y_hi = (builder.fadd(vsum(fma_h, ct[h], uh), vsum(fma_h, ht[h], xh[:len(ht[h])]))
+                          for h in (0, 1))
+            y = builder.shuffle_vector(y_lo, y_hi, ir.Constant(ir.VectorType(i32, width), list(range(width))))
+            def larger(a, b):  # b where a is not larger, NaN a included
+                return builder.select(builder.fcmp_ordered(">", a, b), a, b)
+            # one peak vector for both halves: a register fewer in a loop that spills
+            pk_next = larger(larger(builder.call(fabs, [y_lo]), builder.call(fabs, [y_hi])), pk)
             yo = y if ot == d else builder.fptrunc(y, ir.VectorType(ot, width))
             builder.store(yo, builder.bitcast(builder.gep(out_a.data, [i]), yo.type.as_pointer()),
                           align=8 if ot == d else 4)
@@ -1195,7 +1210,7 @@ def _mono_steps_intrinsic(n_sections: int):
             for m in range(n_state):
                 builder.store(builder.extract_element(u, i32(m)), builder.gep(us_a.data, [i64(m)]))
             peak = ir.Constant(d, 0.0)
-            for lane in range(width):
+            for lane in range(half):
                 e = builder.extract_element(pk, i32(lane))
                 peak = builder.select(builder.fcmp_ordered(">", e, peak), e, peak)
             return peak
