@@ -1211,8 +1211,7 @@ def _mono_steps_intrinsic(n_sections: int):
                 builder.store(builder.extract_element(u, i32(m)), builder.gep(us_a.data, [i64(m)]))
             peak = ir.Constant(d, 0.0)
             for lane in range(half):
-                e = builder.extract_element(pk, i32(lane))
-                peak = builder.select(builder.fcmp_ordered(">", e, peak), e, peak)
+                peak = larger(builder.extract_element(pk, i32(lane)), peak)
             return peak
         return nbtypes.float64(x, out, start, n, us, HT, CT, GT, DT), codegen
     return mono_steps
