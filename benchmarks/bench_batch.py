@@ -514,7 +514,10 @@ NOTES = """### Reading these figures
   mono and stereo the batch runs the fast loop (`exact=False`: eight frames per step, within
   rounding of sosfilt and no further than sosfilt from the exact recursion), which quantizes
   each 1024-frame chunk while it is in the cache; its blocks are whole steps, so the output
-  still does not depend on the block size. The hashes add little wall
+  still does not depend on the block size. Stereo keeps the exact loops (bit-identical to
+  sosfilt, also quantized chunk by chunk) on CPUs where they measured faster: AMD Zen 1, whose
+  floating-point units are 128 bits wide (`_kernels.fast_channels`; the record's design says
+  `filter_loop`). The hashes add little wall
   time: the input's SHA-256 runs in a thread while the file is decoded, the FLAC sample MD5
   is the encoder's own (STREAMINFO), and the output's SHA-256 (it has to read the file again
   once the encoder has rewritten its header) runs in a thread while the finished file is

@@ -88,7 +88,10 @@ extended precision is smaller than sosfilt's own
 (tests/test_fastpath.py). The state is flushed (see "Denormal numbers")
 every FLUSH_EVERY frames. Eight and more channels already fill the SIMD
 lanes of the exact loops, so the fast loop serves mono and stereo only
-(:data:`FAST_CHANNELS`).
+(:data:`FAST_CHANNELS`), and stereo only where it pays: on a CPU whose
+floating-point units are 128 bits wide (:data:`NARROW_FP_CPUS`) the exact
+stereo loop measured faster, and stereo keeps it there
+(:func:`fast_channels`).
 
 Dither
 ------
@@ -142,6 +145,8 @@ __all__ = [
     "FAST_CHANNELS",
     "FAST_STEP",
     "FAST_TABLE_FLOOR",
+    "NARROW_FP_CPUS",
+    "fast_channels",
     "fast_tables",
     "filter_runner",
     "filter_unchecked",
@@ -888,8 +893,14 @@ def _define(source: str, name: str, names: dict | None = None) -> Callable:
 
 #: Frames per step of the fast loop.
 FAST_STEP = 8
-#: Channel counts the fast loop serves.
+#: Channel counts the fast loop serves (where it pays: :func:`fast_channels`).
 FAST_CHANNELS = (1, 2)
+#: LLVM names of CPUs whose floating-point units are 128 bits wide (each
+#: 256-bit operation runs as two halves): AMD Zen and Zen+. There the exact
+#: stereo loop, whose two channels fill a 128-bit register, measured faster
+#: than the fast one (2.85 against 3.56 ns/sample, float32 blocks of 65536,
+#: and 4.69 against 5.60 quantized to 24 bits; DEVELOPERS.md).
+NARROW_FP_CPUS = frozenset({"znver1"})
 #: Table entries smaller than this are set to zero, so that a product with
 #: a state above FLUSH_BELOW is never subnormal.
 FAST_TABLE_FLOOR = 1e-100
@@ -1450,14 +1461,14 @@ def filter_runner(n_sections: int, channels: int, fast: bool) -> Callable:
     saves the lookups on every block: on this machine, Python calls cost
     about 0.2 us each, a block of 4096 mono frames about 12 us.
     """
-    key = (n_sections, channels, bool(fast))
+    key = (n_sections, channels, bool(fast) and uses_fast_loop(n_sections, channels))
     if key not in _RUNNERS:
         _RUNNERS[key] = _make_runner(*key)
     return _RUNNERS[key]
 
 
 def _make_runner(n: int, channels: int, fast: bool) -> Callable:
-    if fast and uses_fast_loop(n, channels):
+    if fast:
         loop = _fast_loop(n, channels).compiled
 
         def run_fast(sos, x, zu, out, tables):
@@ -1597,15 +1608,51 @@ def _stored_peak(peak: float, dtype: np.dtype) -> float:
     return float(np.float32(peak)) if dtype.char == "f" else peak
 
 
+_fast_here: tuple[int, ...] | None = None
+
+
+def fast_channels(cpu: str | None = None) -> tuple[int, ...]:
+    """Channel counts that take the fast loop on the CPU named ``cpu``.
+
+    Parameters
+    ----------
+    cpu : str, optional
+        LLVM's name for the CPU (``"znver1"``, ``"skylake-avx512"``, ...).
+        Default: the one numba compiles for, ``NUMBA_CPU_NAME`` if set, else
+        this machine's (worked out once per process).
+
+    Returns
+    -------
+    tuple of int
+        :data:`FAST_CHANNELS`, without stereo on :data:`NARROW_FP_CPUS`.
+    """
+    global _fast_here
+    if cpu is None:
+        if _fast_here is None:
+            _fast_here = fast_channels(_target_cpu())
+        return _fast_here
+    return (1,) if cpu in NARROW_FP_CPUS else FAST_CHANNELS
+
+
+def _target_cpu() -> str:
+    """The CPU numba compiles for: ``NUMBA_CPU_NAME``, else the host's (llvmlite)."""
+    name = os.environ.get("NUMBA_CPU_NAME", "").strip()
+    if name and name != "host":
+        return name
+    import llvmlite.binding
+
+    return llvmlite.binding.get_host_cpu_name()
+
+
 def uses_fast_loop(n_sections: int, channels: int) -> bool:
     """Whether :func:`filter_unchecked` given tables runs the fast loop for this shape.
 
-    Mono and stereo (:data:`FAST_CHANNELS`): their few independent chains
+    Mono and stereo (:func:`fast_channels`): their few independent chains
     cannot fill the SIMD lanes of the exact loops. Other channel counts keep
     the bit-identical exact loops (eight and more fill the lanes there, about
-    15x sosfilt).
+    15x sosfilt), and so does stereo on :data:`NARROW_FP_CPUS`.
     """
-    return channels in FAST_CHANNELS and n_sections <= MAX_UNROLLED_SECTIONS
+    return n_sections <= MAX_UNROLLED_SECTIONS and channels in fast_channels()
 
 
 def _passes(plan: tuple, sos: np.ndarray, x: np.ndarray, out: np.ndarray, zi: np.ndarray

@@ -96,7 +96,9 @@ class Equalizer:
         True (the default): the output is bit-identical to
         :func:`scipy.signal.sosfilt`. False: mono and stereo cascades of up
         to four sections run a faster loop (below) whose output differs
-        from sosfilt's by rounding only; other shapes are exact either way.
+        from sosfilt's by rounding only; other shapes are exact either way,
+        and so is stereo on CPUs where the exact loop is the faster one
+        (:func:`dspeq._kernels.fast_channels`: AMD Zen 1).
 
     Attributes
     ----------

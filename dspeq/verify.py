@@ -97,7 +97,7 @@ def _run(design, x: np.ndarray, block_frames: int) -> np.ndarray:
     if is_oversampled(design):
         return filter_aligned(design, x, block_frames)
 
-    eq = Equalizer(design, channels=1, exact=False)   # the loop the batch runs for mono and stereo
+    eq = Equalizer(design, channels=1, exact=False)   # the batch's mono loop (stereo's, on most CPUs)
     out = np.empty_like(x)
     for start in range(0, len(x), block_frames):
         out[start:start + block_frames] = eq.process(x[start:start + block_frames])

@@ -12,6 +12,19 @@ import pytest
 ROOT = Path(__file__).resolve().parents[1]
 
 
+@pytest.fixture(autouse=True)
+def _fast_loop_for_mono_and_stereo(monkeypatch):
+    """Every test runs the fast loop for mono and stereo, whatever this CPU is.
+
+    On a CPU of ``dspeq._kernels.NARROW_FP_CPUS`` stereo would otherwise take
+    the exact loops and the fast stereo loop would go untested there;
+    tests/test_fastpath.py checks the per-CPU choice itself.
+    """
+    from dspeq import _kernels
+
+    monkeypatch.setattr(_kernels, "_fast_here", _kernels.FAST_CHANNELS)
+
+
 def noise(seconds: float = 0.25, rate: int = 48000, channels: int = 2, level: float = 0.1,
           seed: int = 0) -> np.ndarray:
     """Low-passed noise (frames × channels) with peaks well inside full scale."""

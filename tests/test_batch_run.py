@@ -320,25 +320,34 @@ _WARM_SCRIPT = """
 import sys
 from dspeq import _kernels as K
 from dspeq.batch import Settings, plan, quick_job, run
+K._fast_here = tuple(int(c) for c in sys.argv[3].split(","))
 task = plan(quick_job(sys.argv[1], sys.argv[2], Settings(curve="riaa", gain_db=0.0))).tasks[0]
 run._warm(task)
-print(sorted((key, str(sig[0].dtype)) for key, loop in K._FAST_LOOPS.items()
-             if loop._compiled is not None for sig in loop._compiled.signatures))
+for loops in (K._FAST_LOOPS, K._SOS_LOOPS):
+    print(sorted((key, str(sig[0 if loops is K._FAST_LOOPS else 1].dtype))
+                 for key, loop in loops.items()
+                 if loop._compiled is not None for sig in loop._compiled.signatures))
 """
 
 
-def test_warming_up_loads_the_loops_the_batch_runs(tmp_path, small_tree):
+@pytest.mark.parametrize("fast_here", ["1,2", "1"])
+def test_warming_up_loads_the_loops_the_batch_runs(tmp_path, small_tree, fast_here):
     # In a fresh interpreter: the forked workers inherit what _warm loaded, so it
-    # must be the loops process_task calls (for a stereo 24-bit file: the fast
-    # loop, float32, both the filter alone and the fused quantizer).
+    # must be the loops process_task calls. For a stereo 24-bit file, float32:
+    # the fast loop, both the filter alone and the fused quantizer; on a CPU
+    # where stereo keeps the exact loops (fast_here "1"), those two instead.
     import subprocess
     import sys
 
-    done = subprocess.run([sys.executable, "-c", _WARM_SCRIPT, str(small_tree), str(tmp_path / "out")],
-                          capture_output=True, text=True, check=True)
-    n_sections = dspeq.design("riaa", 48000).sos.shape[0]
-    assert done.stdout.strip() == str([((n_sections, 2, False), "float32"),
-                                       ((n_sections, 2, True), "float32")])
+    done = subprocess.run([sys.executable, "-c", _WARM_SCRIPT, str(small_tree), str(tmp_path / "out"),
+                           fast_here], capture_output=True, text=True, check=True)
+    n = dspeq.design("riaa", 48000).sos.shape[0]
+    fast, exact = done.stdout.split("\n")[:2]
+    if fast_here == "1,2":
+        assert fast == str([((n, 2, False), "float32"), ((n, 2, True), "float32")])
+    else:
+        assert fast == "[]"
+        assert exact == str([((n, 2, "float", False), "float32"), ((n, 2, "pcm", True), "float32")])
 
 
 @pytest.mark.slow

@@ -129,6 +129,40 @@ def test_more_channels_stay_exact(channels):
     assert np.array_equal(eq.state, zf.transpose(0, 2, 1))
 
 
+def test_fast_channels_by_cpu():
+    # Stereo keeps the exact loops where the floating-point units are 128 bits
+    # wide (AMD Zen 1, measured there: DEVELOPERS.md); mono takes the fast loop
+    # everywhere.
+    assert K.fast_channels("znver1") == (1,)
+    for cpu in ("skylake-avx512", "icelake-server", "znver4", "generic"):
+        assert K.fast_channels(cpu) == (1, 2)
+
+
+def test_target_cpu_follows_numba_cpu_name(monkeypatch):
+    import llvmlite.binding
+
+    monkeypatch.setenv("NUMBA_CPU_NAME", "znver1")
+    assert K._target_cpu() == "znver1"
+    monkeypatch.setenv("NUMBA_CPU_NAME", "host")
+    assert K._target_cpu() == llvmlite.binding.get_host_cpu_name()
+
+
+def test_stereo_on_a_narrow_cpu_is_the_exact_loop(monkeypatch):
+    # exact=False on such a CPU: stereo output and state bit-identical to
+    # sosfilt's, mono still the fast loop.
+    monkeypatch.setattr(K, "_fast_here", K.fast_channels("znver1"))
+    rng = np.random.default_rng(21)
+    sos = random_sos(rng, 2)
+    x = rng.standard_normal((5000, 2))
+    eq = Equalizer(sos, 2, exact=False)
+    y = run(eq, x, [700, 1, 4096])
+    ref, zf = signal.sosfilt(sos, x, axis=0, zi=np.zeros((2, 2, 2)))
+    assert np.array_equal(y, ref) and np.array_equal(eq.state, zf.transpose(0, 2, 1))
+    mono = Equalizer(sos, 1, exact=False).process(x[:, 0])
+    assert not np.array_equal(mono, ref[:, 0])
+    assert relative(mono, ref[:, 0]) <= 1e-12
+
+
 def test_state_after_each_block_is_sosfilts_zf():
     rng = np.random.default_rng(3)
     sos = random_sos(rng, 3)

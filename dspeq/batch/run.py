@@ -333,6 +333,8 @@ def _equalizer(design, channels: int):
     Mono and stereo take the fast loop (exact=False): within rounding of
     sosfilt (1e-15 of the peak for RIAA at 96 kHz, far below the LSB of any
     output format), and no further from the exact recursion than sosfilt is.
+    Stereo keeps the exact loop on CPUs where that is the faster
+    (:func:`dspeq._kernels.fast_channels`).
     """
     from ..stream import Equalizer
 
