@@ -1083,8 +1083,12 @@ def _mono_steps_intrinsic(n_sections: int):
     broadcast loads; float32: one conversion, then broadcast loads from a
     stack buffer), the state's splats by shuffles, and every sum is the scalar
     code's chain of fused multiply-adds, so the results are the same bit for
-    bit (tests/test_fastpath.py). The table rows are loaded once, before the
-    loop. Each half of the eight outputs is a vector of its own, so that the
+    bit (tests/test_fastpath.py). The state's table rows are loaded once,
+    before the loop; the input's rows in the loop, next to their one use, with
+    the input's sums made first (on the first-generation EPYC, float64: 45
+    memory operands per step instead of 51 and no spill stores, 3.10 -> 2.81
+    ns/sample; float32 3.37 -> 3.11; best of six interleaved runs each).
+    Each half of the eight outputs is a vector of its own, so that the
     first half sums only the first half of the input, as the scalar code does
     (``HT[j, k]`` is zero for ``k < j``): on a CPU with 128-bit units that
     leaves out a ninth of the step's fused multiply-adds (measured on the
@@ -1157,11 +1161,9 @@ def _mono_steps_intrinsic(n_sections: int):
             fma_s = vector_intrinsic(module, "fma", vs, 3)
             fma_h = vector_intrinsic(module, "fma", vh, 3)
             fabs = vector_intrinsic(module, "fabs", vh, 1)
-            # each half of the outputs a vector: the first half sums only the first half of the input
-            ht = [rows(builder, tables[0], half, width, 0, half),
-                  rows(builder, tables[0], width, width, half, half)]
+            # the state's table rows, loaded once before the loop
             ct = [rows(builder, tables[1], n_state, width, first, half) for first in (0, half)]
-            gt, dt = rows(builder, tables[2], width, n_state), rows(builder, tables[3], n_state, n_state)
+            dt = rows(builder, tables[3], n_state, n_state)
             u0 = ir.Constant(vs, None)
             for m in range(n_state):
                 u0 = builder.insert_element(u0, builder.load(builder.gep(us_a.data, [i64(m)])), i32(m))
@@ -1196,14 +1198,20 @@ def _mono_steps_intrinsic(n_sections: int):
                 return builder.shuffle_vector(v, ir.Constant(vw, None), ir.Constant(
                     ir.VectorType(i32, lanes), list(range(lanes))))
             xs, xh = [narrow(v, n_state) for v in xw], [narrow(v, half) for v in xw]
-            uh = [splat(builder, u, m, half) for m in range(n_state)]
-            ustate = [splat(builder, u, m, n_state) for m in range(n_state)]
             def vsum(fma, rows_, splats):
                 return _vector_sum(builder, fma, list(zip(rows_, splats, strict=True)))
-            # the state after the step first, as in the scalar source (_fast_step_lines)
-            t = builder.fadd(builder.fadd(u, vsum(fma_s, gt, xs)), vsum(fma_s, dt, ustate))
-            y_lo, y_hi = (builder.fadd(vsum(fma_h, ct[h], uh), vsum(fma_h, ht[h], xh[:len(ht[h])]))
-                          for h in (0, 1))
+            # the input's shares of the state and of each half of the outputs first, their
+            # table rows loaded here (each half of the outputs a vector: the first half sums
+            # only the first half of the input)
+            from_input = vsum(fma_s, rows(builder, tables[2], width, n_state), xs)
+            ht = [rows(builder, tables[0], half, width, 0, half),
+                  rows(builder, tables[0], width, width, half, half)]
+            hx = [vsum(fma_h, ht[h], xh[:len(ht[h])]) for h in (0, 1)]
+            uh = [splat(builder, u, m, half) for m in range(n_state)]
+            ustate = [splat(builder, u, m, n_state) for m in range(n_state)]
+            # then the state after the step, then the outputs, as in the scalar source
+            t = builder.fadd(builder.fadd(u, from_input), vsum(fma_s, dt, ustate))
+            y_lo, y_hi = (builder.fadd(vsum(fma_h, ct[h], uh), hx[h]) for h in (0, 1))
             y = builder.shuffle_vector(y_lo, y_hi, ir.Constant(ir.VectorType(i32, width), list(range(width))))
             def larger(a, b):  # b where a is not larger, NaN a included
                 return builder.select(builder.fcmp_ordered(">", a, b), a, b)
