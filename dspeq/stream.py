@@ -111,7 +111,8 @@ class Equalizer:
         :func:`scipy.signal.sosfilt` uses for a ``(channels, frames)`` signal
         filtered along its last axis.
     exact : bool
-        Whether the output is bit-identical to sosfilt's.
+        Whether the output was asked to be bit-identical to sosfilt's
+        (with False, shapes the fast loop does not serve still are).
 
     Notes
     -----
@@ -201,7 +202,7 @@ class Equalizer:
 
     @property
     def exact(self) -> bool:
-        """Whether the output is bit-identical to :func:`scipy.signal.sosfilt`."""
+        """Whether bit-identity with :func:`scipy.signal.sosfilt` was asked for (``exact=True``)."""
         return self._exact
 
     @property
