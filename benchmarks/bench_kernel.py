@@ -11,7 +11,8 @@ Prints Markdown tables to stdout (``--markdown FILE`` also writes them):
    sosfilt in extended precision, over 10 minutes at 96 kHz (1 with --quick)
    for the default RIAA design and designs with poles at |z| = 0.9999.
 3. The floor: the recursion's dependency chain, timed alone, and what limits
-   the fast path.
+   the fast path; the fast mono loop's time taken apart (per-block work,
+   memory, arithmetic).
 4. Denormals: an impulse followed by 20 s of digital silence vs 20 s of
    noise, and the cost of the flush on normal audio.
 5. Filter + TPDF quantizer: fused pass vs two passes vs numpy.
@@ -291,6 +292,60 @@ def _unflushed_loop(n_sections: int, lanes: int) -> Callable:
     return loop
 
 
+def _fast_mono_split(sos: np.ndarray, dtype: type) -> list[float]:
+    """ns/sample of the fast mono loop, peeled: see :func:`fast_mono_table`."""
+    n, block, small = 20 * FS, 65536, 16384
+    x = (0.1 * np.random.default_rng(5).standard_normal((n, 1))).astype(dtype)
+    y = np.empty_like(x)
+    tables = _kernels.fast_tables(sos, 1)
+    loop = _kernels._fast_loop(sos.shape[0], 1).compiled
+    zu = _kernels.to_u_state(np.zeros((sos.shape[0], 1, 2)))
+    x_small, y_small = x[:small].copy(), y[:small]
+
+    def direct() -> None:
+        for i in range(0, n, block):
+            loop(x[i : i + block], y[i : i + block], zu, *tables)
+
+    def in_cache() -> None:
+        for _ in range(n // small):
+            loop(x_small, y_small, zu, *tables)
+
+    def copy() -> None:
+        for i in range(0, n, block):
+            np.multiply(x[i : i + block], 1.5, out=y[i : i + block])
+
+    runs = [stream_equalizer(sos, x, block, exact=False), direct, in_cache, copy]
+    for run in runs:
+        run()  # compiled and in the cache before the timing
+    return [min(t) / n * 1e9 for t in side_by_side(5, runs)]
+
+
+def fast_mono_table(sos: np.ndarray) -> list[str]:
+    """Where the fast mono loop's time goes: per-block work, memory, arithmetic."""
+    split = {dtype: _fast_mono_split(sos, dtype) for dtype in (np.float64, np.float32)}
+    labels = [
+        "Equalizer(exact=False).process, blocks of 65536 (as in the first table)",
+        "the compiled fast loop called directly on the same blocks",
+        "the compiled fast loop on one block of 16384 frames, again and again (in the cache)",
+        "numpy `multiply(x, 1.5, out=y)` on the same blocks (the memory traffic alone)",
+    ]
+    rows = [
+        f"### Where the fast mono loop's time goes (20 s at {FS} Hz, {sos.shape[0]} sections, "
+        "best of 5 side-by-side rounds, ns/sample)",
+        "",
+        "The first row less the second is the Equalizer's own work per block (checks, the "
+        "state's copy, the call); the second against the third shows whether memory holds the "
+        "loop back (the same work, out of the cache and in it); the last row is what reading "
+        "the input and writing the output cost by themselves.",
+        "",
+        "| run | float64 | float32 |",
+        "|---|---:|---:|",
+    ]
+    rows += [f"| {label} | {split[np.float64][i]:.2f} | {split[np.float32][i]:.2f} |"
+             for i, label in enumerate(labels)]
+    return rows
+
+
 def denormal_table(sos: np.ndarray, rounds: int) -> list[str]:
     frames, channels = 20 * FS, 2
     noise = 0.1 * np.random.default_rng(1).standard_normal((frames, channels))
@@ -485,6 +540,7 @@ def kernel_sections(quick: bool = False) -> list[list[str]]:
         throughput_table(sos, seconds, rounds),
         accuracy_table(minutes),
         floor_table(sos),
+        fast_mono_table(sos),
         denormal_table(sos, rounds),
         quantize_table(sos, rounds),
         compile_table(sos),
