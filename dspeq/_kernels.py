@@ -123,6 +123,7 @@ from __future__ import annotations
 import math
 import os
 import stat
+import struct
 import tempfile
 import threading
 import types
@@ -1611,9 +1612,23 @@ def _make_pcm_runner(n: int, channels: int, fast: bool) -> Callable:
     return fast_pass if fast else run
 
 
+_FLOAT32 = struct.Struct("f")
+
+
 def _stored_peak(peak: float, dtype: np.dtype) -> float:
-    """A loop's float64 peak as the output stores it (rounded once more for float32 output)."""
-    return float(np.float32(peak)) if dtype.char == "f" else peak
+    """A loop's float64 peak as the output stores it (rounded once more for float32 output).
+
+    The rounding goes through ``struct``'s float32 (a C cast, round to
+    nearest), which is about 0.3 us against 0.9 for ``np.float32(peak)``:
+    this is on every block's path. A value that rounds beyond float32's
+    range is stored as infinity, where ``struct`` raises instead.
+    """
+    if dtype.char != "f":
+        return peak
+    try:
+        return _FLOAT32.unpack(_FLOAT32.pack(peak))[0]
+    except OverflowError:
+        return math.inf
 
 
 _fast_here: tuple[int, ...] | None = None

@@ -599,6 +599,23 @@ def test_peak_abs_nan_and_inf():
         K.peak_abs(np.zeros(3, np.int16))
 
 
+
+def test_stored_peak_rounds_as_numpy_float32():
+    """The peak of float32 output is numpy's float32 rounding of the float64 peak (numpy reference)."""
+    f32, f64 = np.dtype(np.float32), np.dtype(np.float64)
+    info = np.finfo(np.float32)
+    ulp_above_max = 2.0**104  # the spacing of float32 numbers just below its largest finite value
+    edges = [0.0, -0.0, 1.0 + 2.0**-24, 1.0 + 3 * 2.0**-24, float(info.smallest_subnormal) / 2,
+             float(info.smallest_subnormal) * 0.75, float(info.max), float(info.max) + ulp_above_max / 2,
+             float(info.max) + ulp_above_max / 4, 1e39, np.inf, np.nan, 5e-324]
+    values = edges + list(np.random.default_rng(7).lognormal(0.0, 30.0, 2000))
+    with np.errstate(over="ignore"):
+        for v in values:
+            got, want = K._stored_peak(float(v), f32), float(np.float32(v))
+            assert got == want or (np.isnan(got) and np.isnan(want)), v
+            assert K._stored_peak(float(v), f64) == v or np.isnan(v)  # float64 output: unchanged
+
+
 # ---------------------------------------------------------------- import, cache
 
 
