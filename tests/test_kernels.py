@@ -599,7 +599,6 @@ def test_peak_abs_nan_and_inf():
         K.peak_abs(np.zeros(3, np.int16))
 
 
-
 def test_stored_peak_rounds_as_numpy_float32():
     """The peak of float32 output is numpy's float32 rounding of the float64 peak (numpy reference)."""
     f32, f64 = np.dtype(np.float32), np.dtype(np.float64)
