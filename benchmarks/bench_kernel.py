@@ -298,17 +298,17 @@ def _fast_mono_split(sos: np.ndarray, dtype: type) -> list[float]:
     x = (0.1 * np.random.default_rng(5).standard_normal((n, 1))).astype(dtype)
     y = np.empty_like(x)
     tables = _kernels.fast_tables(sos, 1)
-    loop = _kernels._fast_loop(sos.shape[0], 1).compiled
-    zu = _kernels.to_u_state(np.zeros((sos.shape[0], 1, 2)))
+    loop = _kernels._fast_loop(sos.shape[0], 1, decoupled=tables.decoupled).compiled
+    zs = _kernels.to_loop_state(np.zeros((sos.shape[0], 1, 2)), tables)
     x_small, y_small = x[:small].copy(), y[:small]
 
     def direct() -> None:
         for i in range(0, n, block):
-            loop(x[i : i + block], y[i : i + block], zu, *tables)
+            loop(x[i : i + block], y[i : i + block], zs, *tables.loop)
 
     def in_cache() -> None:
         for _ in range(n // small):
-            loop(x_small, y_small, zu, *tables)
+            loop(x_small, y_small, zs, *tables.loop)
 
     def copy() -> None:
         for i in range(0, n, block):

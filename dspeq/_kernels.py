@@ -86,7 +86,11 @@ coordinates that stay well conditioned for poles near z = 1 (see
 :func:`fast_tables`); with them the error against the recursion in
 extended precision is smaller than sosfilt's own
 (tests/test_fastpath.py). The state is flushed (see "Denormal numbers")
-every FLUSH_EVERY frames. Eight and more channels already fill the SIMD
+every FLUSH_EVERY frames. Mono on :data:`NARROW_FP_CPUS` runs a variant
+with fewer operations (:func:`decoupled_tables`): substeps of four frames,
+the state in coordinates where each section evolves on its own and is its
+share of the first two outputs, so those outputs are sums and the state
+update is a 2 x 2 block per section. Eight and more channels already fill the SIMD
 lanes of the exact loops, so the fast loop serves mono and stereo only
 (:data:`FAST_CHANNELS`), and stereo only where it pays: on a CPU whose
 floating-point units are 128 bits wide (:data:`NARROW_FP_CPUS`) the exact
@@ -128,7 +132,7 @@ import tempfile
 import threading
 import types
 from collections.abc import Callable
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -146,6 +150,14 @@ __all__ = [
     "FAST_CHANNELS",
     "FAST_STEP",
     "FAST_TABLE_FLOOR",
+    "DECOUPLED_MAX_CONDITION",
+    "DECOUPLED_SUBSTEP",
+    "FastTables",
+    "decoupled_mono",
+    "decoupled_tables",
+    "step_tables",
+    "to_loop_state",
+    "from_loop_state",
     "NARROW_FP_CPUS",
     "fast_channels",
     "fast_tables",
@@ -891,6 +903,14 @@ def _define(source: str, name: str, names: dict | None = None) -> Callable:
 # made in extended precision it is closer to the exact recursion than
 # sosfilt's (tests/test_fastpath.py). Frames left over (fewer than
 # FAST_STEP) run the exact loop.
+#
+# The decoupled mono loop (decoupled_tables, _decoupled_steps_source) does
+# the same over substeps of DECOUPLED_SUBSTEP = 4 frames in other state
+# coordinates w = R u: there the transition is block-diagonal (each section
+# on its own: D is 2 x 2 per section, two products per pair of values), and
+# each section's pair is its share of the substep's output 0 and of output 1
+# less output 0, so outputs 0-1 need no products at all. On a CPU with
+# 128-bit units that is 44 fused multiply-adds per eight frames against 64.
 
 #: Frames per step of the fast loop.
 FAST_STEP = 8
@@ -905,6 +925,15 @@ NARROW_FP_CPUS = frozenset({"znver1"})
 #: Table entries smaller than this are set to zero, so that a product with
 #: a state above FLUSH_BELOW is never subnormal.
 FAST_TABLE_FLOOR = 1e-100
+#: Frames per substep of the decoupled mono loop (two substeps per FAST_STEP).
+DECOUPLED_SUBSTEP = 4
+#: Largest condition number of the decoupled loop's change of coordinates
+#: (and magnitude of its decoupling basis) it is used with; the error it
+#: adds grows with it (about 1e-16 times it, relative to the output's peak).
+DECOUPLED_MAX_CONDITION = 300.0
+#: Largest error, relative to the largest, of the decays per substep that the
+#: decoupled loop's rounded transition may have (see :func:`decoupled_tables`).
+DECOUPLED_DECAY_TOLERANCE = 1e-14
 
 
 def _tree(terms: list[str]) -> str:
@@ -1068,14 +1097,281 @@ def _fast_driver_source(name: str, steps: str, pcm: bool) -> str:
     return "\n".join(lines) + "\n"
 
 
+def _chain(products: list, mul: Callable, fma: Callable):
+    """The sum of the ``products`` (a, b) as one chain of fma: the decoupled loop's input sums."""
+    (a, b), *rest = products
+    total = mul(a, b)
+    for a, b in rest:
+        total = fma(a, b, total)
+    return total
+
+
+def _decoupled_sums(n_state: int, mul: Callable, fma: Callable, add: Callable, splat: Callable,
+                    swap: Callable, carry: Callable, w: list, x: list, tables: dict) -> tuple[list, list]:
+    """One substep of the decoupled mono loop, on scalars (source text) or LLVM vectors alike.
+
+    ``w`` the state's pairs, ``x`` the substep's inputs (both as the caller
+    represents them: one entry per pair / per frame, where ``splat(w, m)``
+    is state value ``m`` in every lane, ``swap`` exchanges a pair's values and
+    ``carry(v)`` is ``v`` plus, in lane 1, lane 0), and ``tables[name](row, pair)`` the
+    table row entries that a pair of lanes multiplies. Returns the state after
+    the substep (per pair) and the two output pairs (frames 0-1 and 2-3), in
+    the one order both the scalar source and the vector code evaluate them:
+
+    * the input's share of each state pair and of the outputs, each one chain
+      of fused multiply-adds over the frames (first the state's);
+    * the state after: ``(w + input's share) + (PQ[1] * swap(w) + PQ[0] * w)``;
+    * outputs 0-1: ``carry`` of the sum of the sections' pairs (each pair is
+      its section's share of output 0 and of output 1 less output 0), plus
+      the input's share; outputs 2-3: the state's share
+      (:func:`_fused_chains` over the state values), plus the input's.
+    """
+    pairs, frames = n_state // 2, DECOUPLED_SUBSTEP
+    gx = [_chain([(tables["GT"](j, p), x[j]) for j in range(frames)], mul, fma) for p in range(pairs)]
+    hx = [_chain([(tables["HT"](j, h), x[j]) for j in range(2 * h + 2)], mul, fma) for h in (0, 1)]
+    after = [add(add(w[p], gx[p]), fma(tables["PQ"](1, p), swap(w[p]), mul(tables["PQ"](0, p), w[p])))
+             for p in range(pairs)]
+    first = w[0]
+    for p in range(1, pairs):
+        first = add(first, w[p])
+    second = _fused_chains([(tables["CT"](m, 1), splat(w, m)) for m in range(n_state)], mul, fma, add)
+    return after, [add(carry(first), hx[0]), add(second, hx[1])]
+
+
+def _add_text(a: str, b: str) -> str:
+    return f"({a} + {b})"
+
+
+def _carry_text(lane: int, n_sections: int) -> Callable[[str], str]:
+    """The scalar source's ``carry`` for one lane (see :func:`_decoupled_sums`)."""
+    if lane == 0:
+        return lambda v: v
+    lane0 = "w0"
+    for p in range(1, n_sections):
+        lane0 = _add_text(lane0, f"w{2 * p}")
+    return lambda v: _add_text(v, lane0)
+
+
+def _decoupled_name(n_sections: int) -> str:
+    return f"_decoupled_steps_{n_sections}s"
+
+
+def _decoupled_steps_source(n_sections: int) -> str:
+    """Source of the decoupled mono steps, in scalars: ``(x, out, start, n, us, HT, CT, GT, PQ)`` -> peak.
+
+    The signature and results of :func:`_fast_steps_source` for one channel
+    (``n`` steps of FAST_STEP frames, each two substeps of
+    DECOUPLED_SUBSTEP), with :func:`decoupled_tables`'s tables and the state
+    ``us`` in their coordinates. Each lane ``l`` of the vector code
+    (:func:`_decoupled_steps_intrinsic`) is one scalar here: state values
+    ``2 p + l``, outputs ``l`` and ``2 + l`` of each substep.
+    """
+    n_state = 2 * n_sections
+    ind = " " * 8
+    lines = [f"def {_decoupled_name(n_sections)}(x, out, start, n, us, HT, CT, GT, PQ):",
+             "    xf = x.reshape(-1)",
+             "    of = out.reshape(-1)",
+             *[f"    w{m} = us[{m}, 0]" for m in range(n_state)],
+             "    pk0 = 0.0",
+             "    pk1 = 0.0",
+             "    i = np.uint64(start)",
+             "    for _ in range(n):",
+             f"{ind}_prefetch(xf, i + np.uint64(PREFETCH_AHEAD))",
+             f"{ind}_prefetch_write(of, i + np.uint64(PREFETCH_AHEAD))"]
+    for _ in range(FAST_STEP // DECOUPLED_SUBSTEP):
+        lines += _decoupled_substep_lines(n_sections, ind)
+    lines += [*[f"    us[{m}, 0] = w{m}" for m in range(n_state)],
+              "    peak = 0.0",
+              "    peak = pk0 if pk0 > peak else peak",
+              "    peak = pk1 if pk1 > peak else peak",
+              "    return peak"]
+    return "\n".join(lines) + "\n"
+
+
+def _decoupled_substep_lines(n_sections: int, ind: str) -> list[str]:
+    """One substep of :func:`_decoupled_steps_source`: loads, both lanes' sums, peaks, stores."""
+    n_state, frames = 2 * n_sections, DECOUPLED_SUBSTEP
+    lines = [f"{ind}x{j} = np.float64(xf[i + U{j}])" for j in range(frames)]
+    for lane in (0, 1):
+        tables = {name: (lambda r, p, name=name, lane=lane: f"{name}[{r}, {2 * p + lane}]")
+                  for name in ("GT", "HT", "CT", "PQ")}
+        after, (first, second) = _decoupled_sums(
+            n_state, lambda a, b: f"{a} * {b}", lambda a, b, c: f"_fma({a}, {b}, {c})", _add_text,
+            lambda w, m: f"w{m}", lambda v: f"w{int(v[1:]) ^ 1}", _carry_text(lane, n_sections),
+            [f"w{2 * p + lane}" for p in range(n_sections)], [f"x{j}" for j in range(frames)], tables)
+        lines += [f"{ind}t{2 * p + lane} = {e}" for p, e in enumerate(after)]
+        lines += [f"{ind}y{lane} = {first}", f"{ind}y{2 + lane} = {second}",
+                  f"{ind}a{lane} = abs(y{lane})", f"{ind}b{lane} = abs(y{2 + lane})",
+                  f"{ind}a{lane} = a{lane} if a{lane} > b{lane} else b{lane}",
+                  f"{ind}pk{lane} = a{lane} if a{lane} > pk{lane} else pk{lane}"]
+    lines += [f"{ind}of[i + U{k}] = y{k}" for k in range(frames)]
+    lines += [f"{ind}w{m} = t{m}" for m in range(n_state)]
+    return lines + [f"{ind}i += U{frames}"]
+
+
 def _vector_sum(builder, fma, products):
     """:func:`_fma_sum` on LLVM vectors, in the same order (:func:`_fused_chains`)."""
     return _fused_chains(products, builder.fmul, lambda a, b, c: builder.call(fma, [a, b, c]), builder.fadd)
 
 
+def _steps_intrinsic(emit: Callable, name: str):
+    """A numba intrinsic ``(x, out, start, n, us, T0, T1, T2, T3) -> peak`` whose loop ``emit`` writes.
+
+    ``emit(builder, x, out, us, tables, start, n, xt, ot)`` gets the arrays
+    as numba's array structures (``tables`` the four), ``start`` and ``n``
+    as LLVM values and the LLVM types of ``x``'s and ``out``'s elements, and
+    returns the peak. The intrinsic accepts C-contiguous arrays only (the
+    loops do their own pointer arithmetic).
+    """
+    from numba import types as nbtypes
+    from numba.extending import intrinsic
+
+    def steps(typingctx, x, out, start, n, us, t0, t1, t2, t3):
+        arrays = (x, out, us, t0, t1, t2, t3)
+        if not all(isinstance(a, nbtypes.Array) and a.layout == "C" for a in arrays):
+            return None
+
+        def codegen(context, builder, signature, args):
+            x_a, out_a, _, _, us_a, *tables = [
+                context.make_array(t)(context, builder, v) if isinstance(t, nbtypes.Array) else v
+                for t, v in zip(signature.args, args, strict=True)]
+            xt, ot = (context.get_value_type(t.dtype) for t in signature.args[:2])
+            return emit(builder, x_a, out_a, us_a, tables, args[2], args[3], xt, ot)
+        return nbtypes.float64(x, out, start, n, us, t0, t1, t2, t3), codegen
+    steps.__name__ = steps.__qualname__ = name
+    return intrinsic(steps)
+
+
+def _loop_blocks(builder, name: str) -> tuple:
+    """A loop's blocks ``(entry, head, body, done)``: the builder branches to ``head`` and is placed there."""
+    entry = builder.block
+    head, body, done = (builder.append_basic_block(f"{name}.{part}") for part in ("head", "body", "done"))
+    builder.branch(head)
+    builder.position_at_end(head)
+    return entry, head, body, done
+
+
+def _vector_intrinsic(module, name: str, vector, n_args: int):
+    """``llvm.<name>.v<N>f64`` (llvmlite's declare_intrinsic names scalar types only)."""
+    from llvmlite import ir
+
+    full = f"llvm.{name}.v{vector.count}f64"
+    if full in module.globals:
+        return module.globals[full]
+    return ir.Function(module, ir.FunctionType(vector, [vector] * n_args), name=full)
+
+
+def _decoupled_steps_intrinsic(n_sections: int):
+    """The decoupled mono loop's steps in LLVM vector IR: :func:`_decoupled_steps_source`, two lanes wide.
+
+    Every value is a pair of float64 lanes (one 128-bit register): each
+    section's state, each input splatted, each pair of outputs; the sums
+    are :func:`_decoupled_sums`, the same operations in the same order as
+    the scalar source, so the results are the same bit for bit
+    (tests/test_fastpath.py). A float32 input is loaded splatted and widened
+    in one conversion (``vbroadcastss``, ``vcvtps2pd``), a float64 one by a
+    broadcast load. Measured on the first-generation EPYC, blocks of 16384
+    in the cache: float64 2.50 -> 2.0 ns/sample against the eight-frame step,
+    float32 2.80 -> 2.2 (DEVELOPERS.md).
+    """
+    from llvmlite import ir
+
+    n_state, frames = 2 * n_sections, DECOUPLED_SUBSTEP
+    d, i64, i32 = ir.DoubleType(), ir.IntType(64), ir.IntType(32)
+    v2 = ir.VectorType(d, 2)
+
+    def lanes(builder, v, which):
+        return builder.shuffle_vector(v, ir.Constant(v.type, None), ir.Constant(ir.VectorType(i32, 2), which))
+
+    def codegen(builder, x_a, out_a, us_a, tables, start_v, n_v, xt, ot):
+        fma = _vector_intrinsic(builder.module, "fma", v2, 3)
+        fabs = _vector_intrinsic(builder.module, "fabs", v2, 1)
+
+        def row(array, n_cols):
+            def load(r, pair):
+                pointer = builder.gep(array.data, [i64(r * n_cols + 2 * pair)])
+                return builder.load(builder.bitcast(pointer, v2.as_pointer()), align=8)
+            return load
+
+        table_rows = {"HT": row(tables[0], frames), "CT": row(tables[1], frames),
+                      "GT": row(tables[2], n_state), "PQ": row(tables[3], n_state)}
+
+        def splat_input(index):
+            value = builder.load(builder.gep(x_a.data, [index]))
+            if xt == d:
+                return lanes(builder, builder.insert_element(v2(None), value, i32(0)), [0, 0])
+            narrow = ir.VectorType(xt, 2)
+            pair = builder.insert_element(ir.Constant(narrow, None), value, i32(0))
+            return builder.fpext(lanes(builder, pair, [0, 0]), v2)
+
+        def larger(a, b):  # b where a is not larger, NaN a included
+            return builder.select(builder.fcmp_ordered(">", a, b), a, b)
+
+        def carry(v):  # lane 0 plus -0.0 (itself, bit for bit), lane 1 plus lane 0
+            order = ir.Constant(ir.VectorType(i32, 2), [2, 0])
+            shifted = builder.shuffle_vector(v, v2([-0.0, -0.0]), order)
+            return builder.fadd(v, shifted)
+
+        def substep(i, w, peak):
+            x_s = [splat_input(builder.add(i, i64(j))) for j in range(frames)]
+            after, (first, second) = _decoupled_sums(
+                n_state, builder.fmul, lambda a, b, c: builder.call(fma, [a, b, c]), builder.fadd,
+                lambda w, m: lanes(builder, w[m // 2], [m % 2, m % 2]),
+                lambda v: lanes(builder, v, [1, 0]), carry, w, x_s, table_rows)
+            peak = larger(larger(builder.call(fabs, [first]), builder.call(fabs, [second])), peak)
+            y = builder.shuffle_vector(first, second, ir.Constant(ir.VectorType(i32, 4), [0, 1, 2, 3]))
+            if ot != d:
+                y = builder.fptrunc(y, ir.VectorType(ot, 4))
+            builder.store(y, builder.bitcast(builder.gep(out_a.data, [i]), y.type.as_pointer()),
+                          align=8 if ot == d else 4)
+            return after, peak
+
+        w0 = []
+        for p in range(n_sections):
+            v = ir.Constant(v2, None)
+            for lane in (0, 1):
+                value = builder.load(builder.gep(us_a.data, [i64(2 * p + lane)]))
+                v = builder.insert_element(v, value, i32(lane))
+            w0.append(v)
+        entry, head, body, done = _loop_blocks(builder, "decoupled")
+        i, k, pk = builder.phi(i64), builder.phi(i64), builder.phi(v2)
+        w = [builder.phi(v2) for _ in range(n_sections)]
+        i.add_incoming(start_v, entry)
+        k.add_incoming(i64(0), entry)
+        pk.add_incoming(ir.Constant(v2, None), entry)
+        for phi, v in zip(w, w0, strict=True):
+            phi.add_incoming(v, entry)
+        builder.cbranch(builder.icmp_signed("<", k, n_v), body, done)
+        builder.position_at_end(body)
+        ahead = builder.add(i, i64(PREFETCH_AHEAD))
+        for array, write in ((x_a, False), (out_a, True)):
+            _emit_prefetch(builder, array.data, ahead, write)
+        state, peak = list(w), pk
+        for sub in range(FAST_STEP // frames):
+            state, peak = substep(builder.add(i, i64(sub * frames)), state, peak)
+        i.add_incoming(builder.add(i, i64(FAST_STEP)), body)
+        k.add_incoming(builder.add(k, i64(1)), body)
+        pk.add_incoming(peak, body)
+        for phi, v in zip(w, state, strict=True):
+            phi.add_incoming(v, body)
+        builder.branch(head)
+        builder.position_at_end(done)
+        for p in range(n_sections):
+            for lane in (0, 1):
+                builder.store(builder.extract_element(w[p], i32(lane)),
+                              builder.gep(us_a.data, [i64(2 * p + lane)]))
+        result = ir.Constant(d, 0.0)
+        for lane in (0, 1):
+            result = larger(builder.extract_element(pk, i32(lane)), result)
+        return result
+    return _steps_intrinsic(codegen, "decoupled_steps")
+
+
 def _mono_steps_intrinsic(n_sections: int):
     """The mono fast steps written in LLVM vector IR: the generated steps' arithmetic, in their order.
 
+    The eight-frame step for mono: on CPUs outside :data:`NARROW_FP_CPUS`,
+    and for designs that do not decouple (:func:`decoupled_tables`).
     The same signature and results as ``_fast_steps_source(n_sections, 1)``'s
     function, whose scalar code the SLP vectorizer packs only in part for one
     channel (shuffles between half registers, table strides reloaded from the
@@ -1098,9 +1394,7 @@ def _mono_steps_intrinsic(n_sections: int):
     that spills).
     """
     from llvmlite import ir
-    from numba import types as nbtypes
     from numba.core import cgutils
-    from numba.extending import intrinsic
 
     n_state, width, half = 2 * n_sections, FAST_STEP, FAST_STEP // 2
     d, i64, i32 = ir.DoubleType(), ir.IntType(64), ir.IntType(32)
@@ -1108,13 +1402,6 @@ def _mono_steps_intrinsic(n_sections: int):
     def splat(builder, v, lane, lanes):
         return builder.shuffle_vector(v, ir.Constant(v.type, None), ir.Constant(
             ir.VectorType(i32, lanes), [lane] * lanes))
-
-    def vector_intrinsic(module, name, vector, n_args):
-        """``llvm.<name>.v<N>f64`` (llvmlite's declare_intrinsic names scalar types only)."""
-        full = f"llvm.{name}.v{vector.count}f64"
-        if full in module.globals:
-            return module.globals[full]
-        return ir.Function(module, ir.FunctionType(vector, [vector] * n_args), name=full)
 
     def converted_splats(builder, xv, buf):
         """Splats of the converted float32 inputs, as broadcast loads from a stack buffer.
@@ -1144,126 +1431,115 @@ def _mono_steps_intrinsic(n_sections: int):
         return [builder.load(builder.bitcast(builder.gep(array.data, [i64(r * n_cols + first)]), vector),
                              align=8) for r in range(n_rows)]
 
-    @intrinsic
-    def mono_steps(typingctx, x, out, start, n, us, HT, CT, GT, DT):
-        arrays = (x, out, us, HT, CT, GT, DT)
-        if not all(isinstance(a, nbtypes.Array) and a.layout == "C" for a in arrays):
-            return None  # the pointer arithmetic below needs C-contiguous arrays
-
-        def codegen(context, builder, signature, args):
-            x_a, out_a, _, _, us_a, *tables = [
-                context.make_array(t)(context, builder, v) if isinstance(t, nbtypes.Array) else v
-                for t, v in zip(signature.args, args, strict=True)]
-            start_v, n_v = args[2], args[3]
-            vw, vs, vh = ir.VectorType(d, width), ir.VectorType(d, n_state), ir.VectorType(d, half)
-            xt = context.get_value_type(signature.args[0].dtype)
-            ot = context.get_value_type(signature.args[1].dtype)
-            module = builder.module
-            fma_s = vector_intrinsic(module, "fma", vs, 3)
-            fma_h = vector_intrinsic(module, "fma", vh, 3)
-            fabs = vector_intrinsic(module, "fabs", vh, 1)
-            # the state's table rows, loaded once before the loop
-            ct = [rows(builder, tables[1], n_state, width, first, half) for first in (0, half)]
-            dt = rows(builder, tables[3], n_state, n_state)
-            u0 = ir.Constant(vs, None)
-            for m in range(n_state):
-                u0 = builder.insert_element(u0, builder.load(builder.gep(us_a.data, [i64(m)])), i32(m))
-            # in the function's entry block: the driver calls this once per chunk
-            buf = cgutils.alloca_once(builder, vw)
-            entry = builder.block
-            head = builder.append_basic_block("mono.head")
-            body = builder.append_basic_block("mono.body")
-            done = builder.append_basic_block("mono.done")
-            builder.branch(head)
-            builder.position_at_end(head)
-            i = builder.phi(i64)
-            k = builder.phi(i64)
-            u = builder.phi(vs)
-            pk = builder.phi(vh)
-            i.add_incoming(start_v, entry)
-            k.add_incoming(ir.Constant(i64, 0), entry)
-            u.add_incoming(u0, entry)
-            pk.add_incoming(ir.Constant(vh, None), entry)
-            builder.cbranch(builder.icmp_signed("<", k, n_v), body, done)
-            builder.position_at_end(body)
-            ahead = builder.add(i, i64(PREFETCH_AHEAD))
-            for array, write in ((x_a, False), (out_a, True)):
-                _emit_prefetch(builder, array.data, ahead, write)
-            inputs = builder.bitcast(builder.gep(x_a.data, [i]), ir.VectorType(xt, width).as_pointer())
-            xv = builder.load(inputs, align=8 if xt == d else 4)
-            if xt == d:  # splats straight from the input (broadcast loads)
-                xw = [splat(builder, xv, j, width) for j in range(width)]
-            else:
-                xw = converted_splats(builder, builder.fpext(xv, vw), buf)
-            def narrow(v, lanes):
-                return builder.shuffle_vector(v, ir.Constant(vw, None), ir.Constant(
-                    ir.VectorType(i32, lanes), list(range(lanes))))
-            xs, xh = [narrow(v, n_state) for v in xw], [narrow(v, half) for v in xw]
-            def vsum(fma, rows_, splats):
-                return _vector_sum(builder, fma, list(zip(rows_, splats, strict=True)))
-            # the input's shares of the state and of each half of the outputs first, their
-            # table rows loaded here (each half of the outputs a vector: the first half sums
-            # only the first half of the input)
-            from_input = vsum(fma_s, rows(builder, tables[2], width, n_state), xs)
-            ht = [rows(builder, tables[0], half, width, 0, half),
-                  rows(builder, tables[0], width, width, half, half)]
-            hx = [vsum(fma_h, ht[h], xh[:len(ht[h])]) for h in (0, 1)]
-            uh = [splat(builder, u, m, half) for m in range(n_state)]
-            ustate = [splat(builder, u, m, n_state) for m in range(n_state)]
-            # then the state after the step, then the outputs, as in the scalar source
-            t = builder.fadd(builder.fadd(u, from_input), vsum(fma_s, dt, ustate))
-            y_lo, y_hi = (builder.fadd(vsum(fma_h, ct[h], uh), hx[h]) for h in (0, 1))
-            y = builder.shuffle_vector(y_lo, y_hi, ir.Constant(ir.VectorType(i32, width), list(range(width))))
-            def larger(a, b):  # b where a is not larger, NaN a included
-                return builder.select(builder.fcmp_ordered(">", a, b), a, b)
-            # one peak vector for both halves: a register fewer in a loop that spills
-            pk_next = larger(larger(builder.call(fabs, [y_lo]), builder.call(fabs, [y_hi])), pk)
-            yo = y if ot == d else builder.fptrunc(y, ir.VectorType(ot, width))
-            builder.store(yo, builder.bitcast(builder.gep(out_a.data, [i]), yo.type.as_pointer()),
-                          align=8 if ot == d else 4)
-            i.add_incoming(builder.add(i, i64(width)), body)
-            k.add_incoming(builder.add(k, i64(1)), body)
-            u.add_incoming(t, body)
-            pk.add_incoming(pk_next, body)
-            builder.branch(head)
-            builder.position_at_end(done)
-            for m in range(n_state):
-                builder.store(builder.extract_element(u, i32(m)), builder.gep(us_a.data, [i64(m)]))
-            peak = ir.Constant(d, 0.0)
-            for lane in range(half):
-                peak = larger(builder.extract_element(pk, i32(lane)), peak)
-            return peak
-        return nbtypes.float64(x, out, start, n, us, HT, CT, GT, DT), codegen
-    return mono_steps
+    def codegen(builder, x_a, out_a, us_a, tables, start_v, n_v, xt, ot):
+        vw, vs, vh = ir.VectorType(d, width), ir.VectorType(d, n_state), ir.VectorType(d, half)
+        module = builder.module
+        fma_s = _vector_intrinsic(module, "fma", vs, 3)
+        fma_h = _vector_intrinsic(module, "fma", vh, 3)
+        fabs = _vector_intrinsic(module, "fabs", vh, 1)
+        # the state's table rows, loaded once before the loop
+        ct = [rows(builder, tables[1], n_state, width, first, half) for first in (0, half)]
+        dt = rows(builder, tables[3], n_state, n_state)
+        u0 = ir.Constant(vs, None)
+        for m in range(n_state):
+            u0 = builder.insert_element(u0, builder.load(builder.gep(us_a.data, [i64(m)])), i32(m))
+        # in the function's entry block: the driver calls this once per chunk
+        buf = cgutils.alloca_once(builder, vw)
+        entry, head, body, done = _loop_blocks(builder, "mono")
+        i = builder.phi(i64)
+        k = builder.phi(i64)
+        u = builder.phi(vs)
+        pk = builder.phi(vh)
+        i.add_incoming(start_v, entry)
+        k.add_incoming(ir.Constant(i64, 0), entry)
+        u.add_incoming(u0, entry)
+        pk.add_incoming(ir.Constant(vh, None), entry)
+        builder.cbranch(builder.icmp_signed("<", k, n_v), body, done)
+        builder.position_at_end(body)
+        ahead = builder.add(i, i64(PREFETCH_AHEAD))
+        for array, write in ((x_a, False), (out_a, True)):
+            _emit_prefetch(builder, array.data, ahead, write)
+        inputs = builder.bitcast(builder.gep(x_a.data, [i]), ir.VectorType(xt, width).as_pointer())
+        xv = builder.load(inputs, align=8 if xt == d else 4)
+        if xt == d:  # splats straight from the input (broadcast loads)
+            xw = [splat(builder, xv, j, width) for j in range(width)]
+        else:
+            xw = converted_splats(builder, builder.fpext(xv, vw), buf)
+        def narrow(v, lanes):
+            return builder.shuffle_vector(v, ir.Constant(vw, None), ir.Constant(
+                ir.VectorType(i32, lanes), list(range(lanes))))
+        xs, xh = [narrow(v, n_state) for v in xw], [narrow(v, half) for v in xw]
+        def vsum(fma, rows_, splats):
+            return _vector_sum(builder, fma, list(zip(rows_, splats, strict=True)))
+        # the input's shares of the state and of each half of the outputs first, their
+        # table rows loaded here (each half of the outputs a vector: the first half sums
+        # only the first half of the input)
+        from_input = vsum(fma_s, rows(builder, tables[2], width, n_state), xs)
+        ht = [rows(builder, tables[0], half, width, 0, half),
+              rows(builder, tables[0], width, width, half, half)]
+        hx = [vsum(fma_h, ht[h], xh[:len(ht[h])]) for h in (0, 1)]
+        uh = [splat(builder, u, m, half) for m in range(n_state)]
+        ustate = [splat(builder, u, m, n_state) for m in range(n_state)]
+        # then the state after the step, then the outputs, as in the scalar source
+        t = builder.fadd(builder.fadd(u, from_input), vsum(fma_s, dt, ustate))
+        y_lo, y_hi = (builder.fadd(vsum(fma_h, ct[h], uh), hx[h]) for h in (0, 1))
+        y = builder.shuffle_vector(y_lo, y_hi, ir.Constant(ir.VectorType(i32, width), list(range(width))))
+        def larger(a, b):  # b where a is not larger, NaN a included
+            return builder.select(builder.fcmp_ordered(">", a, b), a, b)
+        # one peak vector for both halves: a register fewer in a loop that spills
+        pk_next = larger(larger(builder.call(fabs, [y_lo]), builder.call(fabs, [y_hi])), pk)
+        yo = y if ot == d else builder.fptrunc(y, ir.VectorType(ot, width))
+        builder.store(yo, builder.bitcast(builder.gep(out_a.data, [i]), yo.type.as_pointer()),
+                      align=8 if ot == d else 4)
+        i.add_incoming(builder.add(i, i64(width)), body)
+        k.add_incoming(builder.add(k, i64(1)), body)
+        u.add_incoming(t, body)
+        pk.add_incoming(pk_next, body)
+        builder.branch(head)
+        builder.position_at_end(done)
+        for m in range(n_state):
+            builder.store(builder.extract_element(u, i32(m)), builder.gep(us_a.data, [i64(m)]))
+        peak = ir.Constant(d, 0.0)
+        for lane in range(half):
+            peak = larger(builder.extract_element(pk, i32(lane)), peak)
+        return peak
+    return _steps_intrinsic(codegen, "mono_steps")
 
 
-_FAST_LOOPS: dict[tuple[int, int, bool], _Kernel] = {}
+_FAST_LOOPS: dict[tuple[int, int, bool, bool], _Kernel] = {}
 
 
-def _fast_loop(n_sections: int, channels: int = 1, pcm: bool = False) -> _Kernel:
+def _fast_loop(n_sections: int, channels: int = 1, pcm: bool = False, decoupled: bool = False) -> _Kernel:
     """The (lazily compiled) fast loop for a cascade (1 .. MAX_UNROLLED_SECTIONS), 1 or 2 channels.
 
-    ``(x, out, zu, HT, CT, GT, DT)`` -> (finite, peak, done): the tables are
-    :func:`fast_tables`'s for this cascade and channel count, ``zu`` the
-    state in u coordinates (:func:`to_u_state`); ``done`` is the number of
-    frames filtered (whole steps), the frames left over are the caller's.
-    The state is flushed (see "Denormal numbers") every FLUSH_EVERY frames.
-    With ``pcm``, the loop that also quantizes (see :func:`_fast_driver_source`).
+    ``(x, out, zs, *tables)`` -> (finite, peak, done): ``tables`` is the
+    ``loop`` of :func:`fast_tables` for this cascade and channel count,
+    ``zs`` the state in the loop's coordinates (:func:`to_loop_state`);
+    ``done`` is the number of frames filtered (whole steps), the frames left
+    over are the caller's. The state is flushed (see "Denormal numbers")
+    every FLUSH_EVERY frames. With ``pcm``, the loop that also quantizes
+    (see :func:`_fast_driver_source`); with ``decoupled``, the decoupled
+    mono loop (:func:`decoupled_tables`), else the eight-frame step.
     """
-    key = (n_sections, channels, bool(pcm))
+    key = (n_sections, channels, bool(decoupled), bool(pcm))
     if key in _FAST_LOOPS:  # without the lock: this is on every block's path
         return _FAST_LOOPS[key]
-    key = key[:2]
+    key = key[:3]
     with _COMPILE_LOCK:
         if key + (False,) not in _FAST_LOOPS:
-            name = _fast_loop_name(n_sections, channels, "steps")
-            scalar = _define(_fast_steps_source(n_sections, channels), name)
-            if channels == 1:
-                steps = _Intrinsic(scalar, lambda: _mono_steps_intrinsic(n_sections))
+            if decoupled:
+                name = _decoupled_name(n_sections)
+                scalar = _define(_decoupled_steps_source(n_sections), name)
+                steps = _Intrinsic(scalar, lambda: _decoupled_steps_intrinsic(n_sections))
             else:
-                steps = _Kernel(scalar, helpers=(_PREFETCH, _PREFETCH_WRITE, _FMA), slp=True)
+                name = _fast_loop_name(n_sections, channels, "steps")
+                scalar = _define(_fast_steps_source(n_sections, channels), name)
+                if channels == 1:
+                    steps = _Intrinsic(scalar, lambda: _mono_steps_intrinsic(n_sections))
+                else:
+                    steps = _Kernel(scalar, helpers=(_PREFETCH, _PREFETCH_WRITE, _FMA), slp=True)
             for quantizes in (False, True):
-                driver = _fast_loop_name(n_sections, channels, "pcm" if quantizes else "loop")
+                driver = f"{name}_{'pcm' if quantizes else 'loop'}"
                 source = _fast_driver_source(driver, name, quantizes)
                 helpers = (steps, _QUANTIZE) if quantizes else (steps,)
                 _FAST_LOOPS[key + (quantizes,)] = _Kernel(
@@ -1271,8 +1547,8 @@ def _fast_loop(n_sections: int, channels: int = 1, pcm: bool = False) -> _Kernel
     return _FAST_LOOPS[key + (bool(pcm),)]
 
 
-def fast_tables(sos: np.ndarray, channels: int = 1) -> tuple[np.ndarray, ...]:
-    """The tables of the fast loop for a cascade and channel count: ``(HT, CT, GT, DT)``.
+def step_tables(sos: np.ndarray, channels: int = 1) -> tuple[np.ndarray, ...]:
+    """The tables of the eight-frame fast loop for a cascade and channel count: ``(HT, CT, GT, DT)``.
 
     Parameters
     ----------
@@ -1309,10 +1585,34 @@ def fast_tables(sos: np.ndarray, channels: int = 1) -> tuple[np.ndarray, ...]:
     changed to ``u`` and rounded once. Entries below
     :data:`FAST_TABLE_FLOOR` are set to zero.
     """
+    n_state = 2 * sos.shape[0]
+    y, u = _unit_responses(sos, FAST_STEP)
+    tables = (np.repeat(y[:, n_state:].T, channels, axis=1),
+              np.repeat(y[:, :n_state].T, channels, axis=1),
+              u[:, n_state:].T,
+              (u[:, :n_state] - np.eye(n_state, dtype=np.longdouble)).T)
+    return _rounded_tables(tables)
+
+
+def _rounded_tables(tables) -> tuple[np.ndarray, ...]:
+    """Extended-precision tables rounded once to float64, entries below FAST_TABLE_FLOOR set to zero."""
+    out = tuple(np.ascontiguousarray(t, dtype=np.float64) for t in tables)
+    for table in out:
+        table[np.abs(table) < FAST_TABLE_FLOOR] = 0.0
+    return out
+
+
+def _unit_responses(sos: np.ndarray, steps: int) -> tuple[np.ndarray, np.ndarray]:
+    """The cascade over ``steps`` frames, in ``np.longdouble``, from each unit state and each unit impulse.
+
+    Returns ``(y, u)``: ``y`` (steps, n_state + steps) the outputs, ``u``
+    (n_state, n_state + steps) the states after the frames, in u
+    coordinates; columns are the unit states (in u), then an impulse at
+    each frame (from zero state).
+    """
     n_sections = sos.shape[0]
-    n_state, steps = 2 * n_sections, FAST_STEP
+    n_state = 2 * n_sections
     to_u = np.kron(np.eye(n_sections), [[1, 0], [1, 1]]).astype(np.longdouble)
-    # Columns: the unit states (in u), then an impulse at each frame of the step (zero state).
     z = np.zeros((n_state, n_state + steps), np.longdouble)
     z[:, :n_state] = np.kron(np.eye(n_sections), [[1, 0], [-1, 1]])  # u -> zi
     y = np.zeros((steps, n_state + steps), np.longdouble)
@@ -1325,15 +1625,188 @@ def fast_tables(sos: np.ndarray, channels: int = 1) -> tuple[np.ndarray, ...]:
             z[2 * s + 1] = b2 * v - a2 * w
             v = w
         y[step] = v
-    u = to_u @ z
-    tables = (np.repeat(y[:, n_state:].T, channels, axis=1),
-              np.repeat(y[:, :n_state].T, channels, axis=1),
-              u[:, n_state:].T,
-              (u[:, :n_state] - np.eye(n_state, dtype=np.longdouble)).T)
-    out = tuple(np.ascontiguousarray(t, dtype=np.float64) for t in tables)
-    for table in out:
-        table[np.abs(table) < FAST_TABLE_FLOOR] = 0.0
-    return out
+    return y, to_u @ z
+
+
+class FastTables(NamedTuple):
+    """What the fast loop needs for one cascade and channel count (:func:`fast_tables`).
+
+    Attributes
+    ----------
+    loop : tuple of ndarray
+        The loop's four tables: :func:`step_tables`'s, or for a decoupled
+        mono cascade :func:`decoupled_tables`'s.
+    decoupled : bool
+        Which loop they are for: the decoupled mono loop, or the eight-frame
+        step.
+    to_loop, from_loop : ndarray or None
+        For the decoupled loop, the (n_state, n_state) matrices from u
+        coordinates (:func:`to_u_state`) to the loop's and back; None where
+        the loop keeps its state in u.
+    """
+
+    loop: tuple[np.ndarray, ...]
+    decoupled: bool = False
+    to_loop: np.ndarray | None = None
+    from_loop: np.ndarray | None = None
+
+
+def fast_tables(sos: np.ndarray, channels: int = 1, decoupled: bool | None = None) -> FastTables:
+    """The fast loop's tables for a cascade and channel count, and the loop they are for.
+
+    Mono takes the decoupled loop (:func:`decoupled_tables`) where its
+    coordinates are well conditioned and ``decoupled`` is True (default:
+    :func:`decoupled_mono`, on CPUs where it measured faster); everything
+    else, the eight-frame step (:func:`step_tables`).
+    """
+    if channels == 1 and (decoupled_mono() if decoupled is None else decoupled):
+        tables = decoupled_tables(sos)
+        if tables is not None:
+            return tables
+    return FastTables(step_tables(sos, channels))
+
+
+def decoupled_tables(sos: np.ndarray) -> FastTables | None:
+    """Tables of the decoupled mono loop, or None where its coordinates would cost accuracy.
+
+    The loop (:func:`_decoupled_steps_source`) takes
+    :data:`DECOUPLED_SUBSTEP` frames at a time like the eight-frame step,
+    in other state coordinates ``w = R u`` (``R`` is ``to_loop``):
+
+    * decoupled: the transition over the substep is block-diagonal, each
+      section's own 2 x 2 block. The cascade's transition is block
+      lower-triangular in u (each section is driven by the ones before it);
+      a unit lower block-triangular change of basis ``T`` removes the
+      coupling (a Sylvester equation per pair of sections, solvable where
+      their poles differ) and leaves the diagonal blocks, each section's
+      own transition, unchanged.
+    * observed: each section's two values are its share of the substep's
+      first two outputs, so those outputs are sums of the state (no
+      products) and the transition's blocks are ``M_s (A_s - I) M_s^-1``,
+      with ``M_s`` the section's 2 x 2 map from its decoupled state to those
+      outputs.
+
+    Returns
+    -------
+    FastTables or None
+        ``loop`` is ``(HT, CT, GT, PQ)``: ``HT[j, k]`` output ``k`` of the
+        substep after an impulse at frame ``j`` (zero state), ``CT[m, k]``
+        output ``k`` from the unit state ``m`` (columns 0 and 1 are 1 for
+        each section's own value and are not read), ``GT[j, m]`` state ``m``
+        after an impulse at ``j``, and ``PQ[0, m]``, ``PQ[1, m]`` the
+        transition minus the identity: ``w'_m = w_m + PQ[0, m] w_m + PQ[1,
+        m] w_(m xor 1)`` plus the input's share. None where ``T`` or an
+        ``M_s`` is singular or their condition number exceeds
+        :data:`DECOUPLED_MAX_CONDITION`.
+    """
+    n_sections = sos.shape[0]
+    n_state, steps = 2 * n_sections, DECOUPLED_SUBSTEP
+    y, u = _unit_responses(sos, steps)
+    transition = u[:, :n_state]
+    T = _decoupling_basis(transition, n_sections)
+    if T is None:
+        return None
+    # each section's share of output 0, and of output 1 less output 0
+    outputs = np.array([[1, 0], [-1, 1]], np.longdouble) @ y[:2, :n_state] @ T
+    M = np.zeros((n_state, n_state), np.longdouble)
+    M_inv = np.zeros_like(M)
+    for s in range(n_sections):
+        block = slice(2 * s, 2 * s + 2)
+        M[block, block] = outputs[:, block]
+        M_inv[block, block] = _inverse_2x2(outputs[:, block])
+    to_loop = M @ _unit_lower_inverse(T, n_sections)
+    from_loop = T @ M_inv
+    condition = np.linalg.cond(to_loop.astype(np.float64))
+    if not np.isfinite(condition) or condition > DECOUPLED_MAX_CONDITION:
+        return None
+    delta = np.zeros_like(M)
+    for s in range(n_sections):
+        block = slice(2 * s, 2 * s + 2)
+        delta[block, block] = M[block, block] @ (transition[block, block] - np.eye(2)) @ M_inv[block, block]
+    if not all(_decays_kept(transition[b, b] - np.eye(2), delta[b, b])
+               for b in (slice(2 * s, 2 * s + 2) for s in range(n_sections))):
+        return None
+    rows = np.arange(n_state)
+    pq = np.stack([delta[rows, rows], delta[rows, rows ^ 1]])
+    loop = _rounded_tables((y[:, n_state:].T, (y[:, :n_state] @ from_loop).T,
+                            (to_loop @ u[:, n_state:]).T, pq))
+    return FastTables(loop, True, to_loop.astype(np.float64), from_loop.astype(np.float64))
+
+
+def _decoupling_basis(transition: np.ndarray, n_sections: int) -> np.ndarray | None:
+    """Unit lower block-triangular ``T`` (2 x 2 blocks) with ``T^-1 A T`` block-diagonal, or None.
+
+    ``A`` (``transition``) is block lower-triangular. Block ``(i, j)`` of
+    ``T`` below the diagonal solves ``A_ii X - X A_jj = -sum_{j <= k < i}
+    A_ik T_kj`` (column by column of blocks), in float64 and then refined
+    twice in extended precision. None where a system is singular or ``T``
+    exceeds :data:`DECOUPLED_MAX_CONDITION` in magnitude.
+    """
+    T = np.eye(2 * n_sections, dtype=np.longdouble)
+
+    def block(a, i, j):
+        return a[2 * i:2 * i + 2, 2 * j:2 * j + 2]
+
+    for j in range(n_sections):
+        for i in range(j + 1, n_sections):
+            rhs = -sum(block(transition, i, k) @ block(T, k, j) for k in range(j, i))
+            a, b = block(transition, i, i), block(transition, j, j)
+            # vec(A X - X B) = (I kron A - B^T kron I) vec(X), vec by columns
+            system = (np.kron(np.eye(2), a) - np.kron(b.T, np.eye(2))).astype(np.float64)
+            x = np.zeros((2, 2), np.longdouble)
+            for _ in range(3):
+                residual = rhs - (a @ x - x @ b)
+                try:
+                    step = np.linalg.solve(system, residual.astype(np.float64).ravel(order="F"))
+                except np.linalg.LinAlgError:
+                    return None
+                x = x + step.reshape(2, 2, order="F").astype(np.longdouble)
+            if not np.all(np.isfinite(x)) or np.max(np.abs(x)) > DECOUPLED_MAX_CONDITION:
+                return None
+            T[2 * i:2 * i + 2, 2 * j:2 * j + 2] = x
+    return T
+
+
+def _unit_lower_inverse(T: np.ndarray, n_sections: int) -> np.ndarray:
+    """The inverse of a unit lower block-triangular ``T``: ``I - N + N^2 - ...`` (``N = T - I``)."""
+    nil = T - np.eye(T.shape[0], dtype=T.dtype)
+    inverse, term = np.eye(T.shape[0], dtype=T.dtype), np.eye(T.shape[0], dtype=T.dtype)
+    for _ in range(1, n_sections):
+        term = -term @ nil
+        inverse = inverse + term
+    return inverse
+
+
+def _decays_kept(exact: np.ndarray, changed: np.ndarray) -> bool:
+    """Whether ``changed``, rounded to float64, keeps the eigenvalues of ``exact`` (2 x 2, both A - I).
+
+    Within :data:`DECOUPLED_DECAY_TOLERANCE` of each, relative: the
+    eigenvalues of a transition minus the identity are a section's decay
+    (and turn) per substep, which for a pole near z = 1 a basis with
+    large entries would round away (the float64 tables of such a basis are
+    checked here, in extended precision).
+    """
+    want = np.sort_complex(_eigenvalues_2x2(exact))
+    got = np.sort_complex(_eigenvalues_2x2(changed.astype(np.float64).astype(np.longdouble)))
+    scale = np.abs(want).max()
+    return bool(scale > 0 and np.all(np.abs(got - want) <= DECOUPLED_DECAY_TOLERANCE * scale))
+
+
+def _eigenvalues_2x2(m: np.ndarray) -> np.ndarray:
+    """The two eigenvalues of a real 2 x 2 matrix, in its precision (complex)."""
+    half_trace = (m[0, 0] + m[1, 1]) / 2
+    disc = (m[0, 0] - m[1, 1]) ** 2 / 4 + m[0, 1] * m[1, 0]
+    root = np.sqrt(np.abs(disc))
+    if disc >= 0:
+        return np.array([half_trace - root, half_trace + root], dtype=np.clongdouble)
+    return np.array([half_trace - 1j * root, half_trace + 1j * root], dtype=np.clongdouble)
+
+
+def _inverse_2x2(m: np.ndarray) -> np.ndarray:
+    """The inverse of a 2 x 2 matrix in its own precision (inf where singular)."""
+    det = m[0, 0] * m[1, 1] - m[0, 1] * m[1, 0]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.array([[m[1, 1], -m[0, 1]], [-m[1, 0], m[0, 0]]], dtype=m.dtype) / det
 
 
 _NO_PCM = np.zeros(5)
@@ -1421,16 +1894,41 @@ def filter_unchecked(
     """
     if tables is None or not uses_fast_loop(sos.shape[0], x.shape[1]):
         return filter_runner(sos.shape[0], x.shape[1], False)(sos, x, zi, out, None)
-    run = filter_runner(sos.shape[0], x.shape[1], True)
-    return _through_u_state(zi, lambda zu: run(sos, x, zu, out, tables))
+    run = filter_runner(sos.shape[0], x.shape[1], True, tables.decoupled)
+    return _through_loop_state(zi, tables, lambda zs: run(sos, x, zs, out, tables))
 
 
-def _through_u_state(zi: np.ndarray, call: Callable) -> Any:
-    """``call(zu)`` on the state ``zi`` in u coordinates, written back into ``zi`` after."""
-    zu = to_u_state(zi)
-    result = call(zu)
-    zi[...] = from_u_state(zu)
+def _through_loop_state(zi: np.ndarray, tables: FastTables, call: Callable) -> Any:
+    """``call(zs)`` on the state ``zi`` in the fast loop's coordinates, written back into ``zi`` after."""
+    zs = to_loop_state(zi, tables)
+    result = call(zs)
+    zi[...] = from_loop_state(zs, tables)
     return result
+
+
+def to_loop_state(zi: np.ndarray, tables: FastTables) -> np.ndarray:
+    """A ``zi`` state in the coordinates of the fast loop that ``tables`` are for.
+
+    u coordinates (:func:`to_u_state`), changed by ``tables.to_loop`` where
+    it is given. The fast runners keep their state in these coordinates from
+    block to block; :func:`from_loop_state` gives ``zi`` back (within
+    rounding).
+    """
+    return _changed(to_u_state(zi), tables.to_loop)
+
+
+def from_loop_state(zs: np.ndarray, tables: FastTables) -> np.ndarray:
+    """The ``zi`` state of a state in the fast loop's coordinates (see :func:`to_loop_state`)."""
+    return from_u_state(_changed(zs, tables.from_loop))
+
+
+def _changed(state: np.ndarray, matrix: np.ndarray | None) -> np.ndarray:
+    """``matrix`` applied to each channel's state vector (values ``2 s + l`` of ``state[s, c, l]``)."""
+    if matrix is None:
+        return state
+    n_sections, channels, _ = state.shape
+    vectors = state.transpose(0, 2, 1).reshape(2 * n_sections, channels)
+    return np.ascontiguousarray((matrix @ vectors).reshape(n_sections, 2, channels).transpose(0, 2, 1))
 
 
 def to_u_state(zi: np.ndarray) -> np.ndarray:
@@ -1453,10 +1951,10 @@ def from_u_state(zu: np.ndarray) -> np.ndarray:
     return zi
 
 
-_RUNNERS: dict[tuple[int, int, bool], Callable] = {}
+_RUNNERS: dict[tuple[int, int, bool, bool], Callable] = {}
 
 
-def filter_runner(n_sections: int, channels: int, fast: bool) -> Callable:
+def filter_runner(n_sections: int, channels: int, fast: bool, decoupled: bool = False) -> Callable:
     """:func:`filter_unchecked` for one shape, with its loops looked up once.
 
     Returns ``run(sos, x, state, out, tables) -> (finite, peak)``, the same
@@ -1465,25 +1963,28 @@ def filter_runner(n_sections: int, channels: int, fast: bool) -> Callable:
     the fast loop runs (``fast`` and :func:`uses_fast_loop`) ``state`` is in
     u coordinates (:func:`to_u_state`): kept in them from block to block, the
     output of a stream does not depend on where its blocks start, as long
-    as they start on whole steps of :data:`FAST_STEP` frames. A caller that
+    as they start on whole steps of :data:`FAST_STEP` frames (``decoupled``:
+    the decoupled mono loop and its coordinates, :func:`to_loop_state`, for
+    tables whose ``decoupled`` is True). A caller that
     filters block after block (:class:`dspeq.stream.Equalizer`) keeps it and
     saves the lookups on every block: on this machine, Python calls cost
     about 0.2 us each, a block of 4096 mono frames about 12 us.
     """
-    key = (n_sections, channels, bool(fast) and uses_fast_loop(n_sections, channels))
+    fast = bool(fast) and uses_fast_loop(n_sections, channels)
+    key = (n_sections, channels, fast, fast and bool(decoupled))
     if key not in _RUNNERS:
         _RUNNERS[key] = _make_runner(*key)
     return _RUNNERS[key]
 
 
-def _make_runner(n: int, channels: int, fast: bool) -> Callable:
+def _make_runner(n: int, channels: int, fast: bool, decoupled: bool) -> Callable:
     if fast:
-        loop = _fast_loop(n, channels).compiled
+        loop = _fast_loop(n, channels, decoupled=decoupled).compiled
 
-        def run_fast(sos, x, zu, out, tables):
-            finite, peak, done = loop(x, out, zu, *tables)
+        def run_fast(sos, x, zs, out, tables):
+            finite, peak, done = loop(x, out, zs, *tables.loop)
             if done < x.shape[0]:  # fewer than FAST_STEP frames left: the exact loop
-                ok, rest = _exact_rest(sos, x[done:], zu, out[done:])
+                ok, rest = _exact_rest(sos, x[done:], zs, out[done:], tables)
                 finite, peak = finite and ok, max(peak, rest)
             return finite, _stored_peak(peak, out.dtype)
         return run_fast
@@ -1507,11 +2008,12 @@ def _make_runner(n: int, channels: int, fast: bool) -> Callable:
     return run_passes
 
 
-def _exact_rest(sos: np.ndarray, x: np.ndarray, zu: np.ndarray, out: np.ndarray) -> tuple[bool, float]:
-    """The exact loop on the frames a fast loop left over, its state ``zu`` in u coordinates."""
-    zi = from_u_state(zu)
+def _exact_rest(sos: np.ndarray, x: np.ndarray, zs: np.ndarray, out: np.ndarray,
+                tables: FastTables) -> tuple[bool, float]:
+    """The exact loop on the frames a fast loop left over, its state ``zs`` in the loop's coordinates."""
+    zi = from_loop_state(zs, tables)
     result = filter_unchecked(sos, x, zi, out)
-    zu[...] = to_u_state(zi)
+    zs[...] = to_loop_state(zi, tables)
     return result
 
 
@@ -1543,30 +2045,31 @@ def filter_quantize_unchecked(
     """
     if tables is None or not uses_fast_loop(sos.shape[0], x.shape[1]):
         return pcm_runner(sos.shape[0], x.shape[1], False)(sos, x, zi, out, gain, bits, state, None)
-    run = pcm_runner(sos.shape[0], x.shape[1], True)
-    return _through_u_state(zi, lambda zu: run(sos, x, zu, out, gain, bits, state, tables))
+    run = pcm_runner(sos.shape[0], x.shape[1], True, tables.decoupled)
+    return _through_loop_state(zi, tables, lambda zs: run(sos, x, zs, out, gain, bits, state, tables))
 
 
-_PCM_RUNNERS: dict[tuple[int, int, bool], Callable] = {}
+_PCM_RUNNERS: dict[tuple[int, int, bool, bool], Callable] = {}
 
 
-def pcm_runner(n_sections: int, channels: int, fast: bool) -> Callable:
+def pcm_runner(n_sections: int, channels: int, fast: bool, decoupled: bool = False) -> Callable:
     """:func:`filter_quantize_unchecked` for one shape, as :func:`filter_runner` is for filtering.
 
     Returns ``run(sos, x, state, out, gain, bits, dither_state, tables) ->
     (finite, clips, peak)``, where ``state`` is in the coordinates of
-    ``filter_runner(n_sections, channels, fast)``: ``zi``, or u
-    (:func:`to_u_state`) where the fast loop runs.
+    ``filter_runner(n_sections, channels, fast, decoupled)``: ``zi``, or the
+    fast loop's (:func:`to_loop_state`) where it runs.
     """
-    key = (n_sections, channels, bool(fast) and uses_fast_loop(n_sections, channels))
+    fast = bool(fast) and uses_fast_loop(n_sections, channels)
+    key = (n_sections, channels, fast, fast and bool(decoupled))
     if key not in _PCM_RUNNERS:
         _PCM_RUNNERS[key] = _make_pcm_runner(*key)
     return _PCM_RUNNERS[key]
 
 
-def _make_pcm_runner(n: int, channels: int, fast: bool) -> Callable:
-    filter_block = filter_runner(n, channels, fast)
-    fast_loop = _fast_loop(n, channels, pcm=True).compiled if fast else None
+def _make_pcm_runner(n: int, channels: int, fast: bool, decoupled: bool) -> Callable:
+    filter_block = filter_runner(n, channels, fast, decoupled)
+    fast_loop = _fast_loop(n, channels, pcm=True, decoupled=decoupled).compiled if fast else None
 
     def two_steps(sos, x, state, out, gain, bits, dither, tables):
         """Through a whole-block array: the filter, then :func:`quantize_tpdf`."""
@@ -1579,7 +2082,7 @@ def _make_pcm_runner(n: int, channels: int, fast: bool) -> Callable:
     def fast_pass(sos, x, state, out, gain, bits, dither, tables):
         # The quantizer takes each chunk's dither keys itself (_quantize_span):
         # no split at the key change, so the filter's steps stay on the block's grid.
-        finite, peak, clips, done = fast_loop(x, out, state, *tables, _pcm_params(gain, bits),
+        finite, peak, clips, done = fast_loop(x, out, state, *tables.loop, _pcm_params(gain, bits),
                                               dither[0], dither[1])
         dither[1] += np.uint64(done * channels)
         if done < x.shape[0]:  # fewer than FAST_STEP frames left
@@ -1655,6 +2158,27 @@ def fast_channels(cpu: str | None = None) -> tuple[int, ...]:
             _fast_here = fast_channels(_target_cpu())
         return _fast_here
     return (1,) if cpu in NARROW_FP_CPUS else FAST_CHANNELS
+
+
+_decoupled_here: bool | None = None
+
+
+def decoupled_mono(cpu: str | None = None) -> bool:
+    """Whether mono takes the decoupled loop (where a design allows it) on the CPU named ``cpu``.
+
+    On :data:`NARROW_FP_CPUS`, where every vector operation is two lanes of
+    float64 and the decoupled loop's fewer operations win (DEVELOPERS.md:
+    2.5 -> 2.0 ns/sample float64 on the first-generation EPYC). Where the
+    units are wider, the eight-frame step fills four lanes per operation
+    and has not been measured against it. ``cpu`` as for
+    :func:`fast_channels` (default: the CPU numba compiles for).
+    """
+    global _decoupled_here
+    if cpu is None:
+        if _decoupled_here is None:
+            _decoupled_here = decoupled_mono(_target_cpu())
+        return _decoupled_here
+    return cpu in NARROW_FP_CPUS
 
 
 def _target_cpu() -> str:

@@ -183,10 +183,11 @@ class Equalizer:
         self._exact = bool(exact)
         fast = not exact and _kernels.uses_fast_loop(self._sos.shape[0], self._channels)
         self._tables = _kernels.fast_tables(self._coefficients, self._channels) if fast else None
-        self._filter = _kernels.filter_runner(self._sos.shape[0], self._channels, fast)
-        self._filter_pcm = _kernels.pcm_runner(self._sos.shape[0], self._channels, fast)
-        # The runners' state: zi, or for the fast loop u coordinates (kept in
-        # them between blocks; see dspeq._kernels.to_u_state).
+        decoupled = fast and self._tables.decoupled
+        self._filter = _kernels.filter_runner(self._sos.shape[0], self._channels, fast, decoupled)
+        self._filter_pcm = _kernels.pcm_runner(self._sos.shape[0], self._channels, fast, decoupled)
+        # The runners' state: zi, or for the fast loop its own coordinates (kept
+        # in them between blocks; see dspeq._kernels.to_loop_state).
         self._zi = np.zeros((self._sos.shape[0], self._channels, 2))
         self._peak = 0.0
 
@@ -208,7 +209,7 @@ class Equalizer:
     @property
     def state(self) -> np.ndarray:
         """Copy of the filter state, shape (n_sections, channels, 2)."""
-        return self._zi.copy() if self._tables is None else _kernels.from_u_state(self._zi)
+        return self._zi.copy() if self._tables is None else _kernels.from_loop_state(self._zi, self._tables)
 
     def reset(self) -> None:
         """Set the filter state to zero (as before the first block)."""

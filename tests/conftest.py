@@ -17,12 +17,15 @@ def _fast_loop_for_mono_and_stereo(monkeypatch):
     """Every test runs the fast loop for mono and stereo, whatever this CPU is.
 
     On a CPU of ``dspeq._kernels.NARROW_FP_CPUS`` stereo would otherwise take
-    the exact loops and the fast stereo loop would go untested there;
-    tests/test_fastpath.py checks the per-CPU choice itself.
+    the exact loops and the fast stereo loop would go untested there; mono
+    takes the decoupled loop wherever a design allows it (elsewhere it would
+    take the eight-frame step, which tests/test_fastpath.py runs too). That
+    file checks the per-CPU choices themselves.
     """
     from dspeq import _kernels
 
     monkeypatch.setattr(_kernels, "_fast_here", _kernels.FAST_CHANNELS)
+    monkeypatch.setattr(_kernels, "_decoupled_here", True)
 
 
 def noise(seconds: float = 0.25, rate: int = 48000, channels: int = 2, level: float = 0.1,
