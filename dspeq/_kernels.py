@@ -1172,8 +1172,7 @@ def _decoupled_steps_source(n_sections: int) -> str:
              "    xf = x.reshape(-1)",
              "    of = out.reshape(-1)",
              *[f"    w{m} = us[{m}, 0]" for m in range(n_state)],
-             "    pk0 = 0.0",
-             "    pk1 = 0.0",
+             *[f"    pk{k} = 0.0" for k in range(DECOUPLED_SUBSTEP)],
              "    i = np.uint64(start)",
              "    for _ in range(n):",
              f"{ind}_prefetch(xf, i + np.uint64(PREFETCH_AHEAD))",
@@ -1182,8 +1181,7 @@ def _decoupled_steps_source(n_sections: int) -> str:
         lines += _decoupled_substep_lines(n_sections, ind)
     lines += [*[f"    us[{m}, 0] = w{m}" for m in range(n_state)],
               "    peak = 0.0",
-              "    peak = pk0 if pk0 > peak else peak",
-              "    peak = pk1 if pk1 > peak else peak",
+              *[f"    peak = pk{k} if pk{k} > peak else peak" for k in range(DECOUPLED_SUBSTEP)],
               "    return peak"]
     return "\n".join(lines) + "\n"
 
@@ -1200,11 +1198,11 @@ def _decoupled_substep_lines(n_sections: int, ind: str) -> list[str]:
             lambda w, m: f"w{m}", lambda v: f"w{int(v[1:]) ^ 1}", _carry_text(lane, n_sections),
             [f"w{2 * p + lane}" for p in range(n_sections)], [f"x{j}" for j in range(frames)], tables)
         lines += [f"{ind}t{2 * p + lane} = {e}" for p, e in enumerate(after)]
-        lines += [f"{ind}y{lane} = {first}", f"{ind}y{2 + lane} = {second}",
-                  f"{ind}a{lane} = abs(y{lane})", f"{ind}b{lane} = abs(y{2 + lane})",
-                  f"{ind}a{lane} = a{lane} if a{lane} > b{lane} else b{lane}",
-                  f"{ind}pk{lane} = a{lane} if a{lane} > pk{lane} else pk{lane}"]
+        lines += [f"{ind}y{lane} = {first}", f"{ind}y{2 + lane} = {second}"]
     lines += [f"{ind}of[i + U{k}] = y{k}" for k in range(frames)]
+    # the peaks of the outputs as stored (rounded to float32 for float32 output)
+    lines += [f"{ind}a{k} = abs(np.float64(of[i + U{k}]))" for k in range(frames)]
+    lines += [f"{ind}pk{k} = a{k} if a{k} > pk{k} else pk{k}" for k in range(frames)]
     lines += [f"{ind}w{m} = t{m}" for m in range(n_state)]
     return lines + [f"{ind}i += U{frames}"]
 
@@ -1252,10 +1250,10 @@ def _loop_blocks(builder, name: str) -> tuple:
 
 
 def _vector_intrinsic(module, name: str, vector, n_args: int):
-    """``llvm.<name>.v<N>f64`` (llvmlite's declare_intrinsic names scalar types only)."""
+    """``llvm.<name>.v<N>f64`` or ``.v<N>f32`` (llvmlite's declare_intrinsic names scalar types only)."""
     from llvmlite import ir
 
-    full = f"llvm.{name}.v{vector.count}f64"
+    full = f"llvm.{name}.v{vector.count}f{64 if isinstance(vector.element, ir.DoubleType) else 32}"
     if full in module.globals:
         return module.globals[full]
     return ir.Function(module, ir.FunctionType(vector, [vector] * n_args), name=full)
@@ -1285,7 +1283,10 @@ def _decoupled_steps_intrinsic(n_sections: int):
 
     def codegen(builder, x_a, out_a, us_a, tables, start_v, n_v, xt, ot):
         fma = _vector_intrinsic(builder.module, "fma", v2, 3)
-        fabs = _vector_intrinsic(builder.module, "fabs", v2, 1)
+        v4 = ir.VectorType(ot, 4)  # four outputs as stored
+        # the peak of each output of a substep (lanes 0-3 in order): float64 in two
+        # registers, float32 in one (half the operations)
+        peak_types = [v2, v2] if ot == d else [v4]
 
         def row(array, n_cols):
             def load(r, pair):
@@ -1318,13 +1319,14 @@ def _decoupled_steps_intrinsic(n_sections: int):
                 n_state, builder.fmul, lambda a, b, c: builder.call(fma, [a, b, c]), builder.fadd,
                 lambda w, m: lanes(builder, w[m // 2], [m % 2, m % 2]),
                 lambda v: lanes(builder, v, [1, 0]), carry, w, x_s, table_rows)
-            peak = larger(larger(builder.call(fabs, [first]), builder.call(fabs, [second])), peak)
             y = builder.shuffle_vector(first, second, ir.Constant(ir.VectorType(i32, 4), [0, 1, 2, 3]))
             if ot != d:
-                y = builder.fptrunc(y, ir.VectorType(ot, 4))
-            builder.store(y, builder.bitcast(builder.gep(out_a.data, [i]), y.type.as_pointer()),
+                y = builder.fptrunc(y, v4)
+            builder.store(y, builder.bitcast(builder.gep(out_a.data, [i]), v4.as_pointer()),
                           align=8 if ot == d else 4)
-            return after, peak
+            parts = [first, second] if ot == d else [y]
+            return after, [larger(builder.call(_vector_intrinsic(builder.module, "fabs", p.type, 1), [p]), q)
+                           for p, q in zip(parts, peak, strict=True)]
 
         w0 = []
         for p in range(n_sections):
@@ -1334,11 +1336,13 @@ def _decoupled_steps_intrinsic(n_sections: int):
                 v = builder.insert_element(v, value, i32(lane))
             w0.append(v)
         entry, head, body, done = _loop_blocks(builder, "decoupled")
-        i, k, pk = builder.phi(i64), builder.phi(i64), builder.phi(v2)
+        i, k = builder.phi(i64), builder.phi(i64)
+        pk = [builder.phi(t) for t in peak_types]
         w = [builder.phi(v2) for _ in range(n_sections)]
         i.add_incoming(start_v, entry)
         k.add_incoming(i64(0), entry)
-        pk.add_incoming(ir.Constant(v2, None), entry)
+        for phi in pk:
+            phi.add_incoming(ir.Constant(phi.type, None), entry)
         for phi, v in zip(w, w0, strict=True):
             phi.add_incoming(v, entry)
         builder.cbranch(builder.icmp_signed("<", k, n_v), body, done)
@@ -1351,8 +1355,7 @@ def _decoupled_steps_intrinsic(n_sections: int):
             state, peak = substep(builder.add(i, i64(sub * frames)), state, peak)
         i.add_incoming(builder.add(i, i64(FAST_STEP)), body)
         k.add_incoming(builder.add(k, i64(1)), body)
-        pk.add_incoming(peak, body)
-        for phi, v in zip(w, state, strict=True):
+        for phi, v in zip(pk + w, peak + state, strict=True):
             phi.add_incoming(v, body)
         builder.branch(head)
         builder.position_at_end(done)
@@ -1361,8 +1364,10 @@ def _decoupled_steps_intrinsic(n_sections: int):
                 builder.store(builder.extract_element(w[p], i32(lane)),
                               builder.gep(us_a.data, [i64(2 * p + lane)]))
         result = ir.Constant(d, 0.0)
-        for lane in (0, 1):
-            result = larger(builder.extract_element(pk, i32(lane)), result)
+        for part in pk:
+            for lane in range(part.type.count):
+                value = builder.extract_element(part, i32(lane))
+                result = larger(value if ot == d else builder.fpext(value, d), result)
         return result
     return _steps_intrinsic(codegen, "decoupled_steps")
 
