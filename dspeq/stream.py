@@ -207,6 +207,20 @@ class Equalizer:
         return self._exact
 
     @property
+    def loop(self) -> str:
+        """Which loop filters: ``"exact"`` (bit-identical to sosfilt), ``"fast"`` or ``"fast-decoupled"``.
+
+        ``"fast"`` is the eight-frame step, ``"fast-decoupled"`` its mono
+        variant for CPUs with 128-bit floating-point units
+        (:func:`dspeq._kernels.decoupled_tables`); both are within rounding
+        of sosfilt. With ``exact=False``, shapes the fast loops do not serve
+        say ``"exact"``.
+        """
+        if self._tables is None:
+            return "exact"
+        return "fast-decoupled" if self._tables.decoupled else "fast"
+
+    @property
     def state(self) -> np.ndarray:
         """Copy of the filter state, shape (n_sections, channels, 2)."""
         return self._zi.copy() if self._tables is None else _kernels.from_loop_state(self._zi, self._tables)

@@ -307,6 +307,8 @@ def test_which_mono_loop():
     riaa = np.array(design("riaa", 96000).sos)
     assert K.fast_tables(riaa, 1).decoupled
     assert not K.fast_tables(riaa, 2).decoupled
+    assert [Equalizer(riaa, c, exact=False).loop for c in (1, 2, 8)] == ["fast-decoupled", "fast", "exact"]
+    assert Equalizer(riaa, 1).loop == "exact"
     twice = np.vstack([riaa[1], riaa[1]])
     assert K.decoupled_tables(twice) is None and not K.fast_tables(twice, 1).decoupled
     x = np.random.default_rng(12).standard_normal(5000)

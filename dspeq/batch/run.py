@@ -349,8 +349,8 @@ def _render(r: _Render, final: Path) -> dict[str, Any]:
     over = is_oversampled(r.design)
     eq = (AlignedStream(OversampledEqualizer(r.design, channels=r.source.channels)) if over
           else _equalizer(r.design, r.source.channels))
-    if not over and _kernels.uses_fast_loop(r.design.sos.shape[0], r.source.channels):
-        r.filter_loop = "fast"
+    if not over:
+        r.filter_loop = eq.loop
     if s.gain_db is not None or r.spec.is_float:
         r.mode = "fixed" if s.gain_db is not None else "float"
         r.gain_db = s.gain_db or 0.0
