@@ -505,8 +505,9 @@ NOTES = """### Reading these figures
   loop at large blocks, however it is written, and stereo at about 4.5-5x; eight channels fill
   the SIMD lanes, and at small blocks sosfilt's per-call overhead dominates. The fast path
   (`exact=False`, mono and stereo) breaks the chain, computing eight frames per step from the
-  state before them; it is bound by that arithmetic, so its speed-up depends on the CPU's
-  vector units (and on how fast sosfilt's scalar loop runs there). The
+  state before them (mono on CPUs with 128-bit units: the decoupled loop, four frames per
+  substep with fewer operations); it is bound by that arithmetic, so its speed-up depends on
+  the CPU's vector units (and on how fast sosfilt's scalar loop runs there). The
   8-channel figures also depend on memory bandwidth (60 s of 8-channel float64 is 370 MB in
   and out). This machine is shared: medians move by 10-30 % from run to run.
 * **Fixed gain.** What remains above the codec is essentially the one kernel pass (filter,
