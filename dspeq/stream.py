@@ -113,6 +113,8 @@ class Equalizer:
     exact : bool
         Whether the output was asked to be bit-identical to sosfilt's
         (with False, shapes the fast loop does not serve still are).
+    loop : str
+        The loop that filters: ``"exact"``, ``"fast"`` or ``"fast-decoupled"``.
 
     Notes
     -----
@@ -129,8 +131,11 @@ class Equalizer:
     computed eight frames at a time straight from the state before them
     (small matrices made in extended precision), so the eight outputs fill
     SIMD registers and only the state update is loop-carried
-    (:mod:`dspeq._kernels`, "Fast path"); ``benchmarks/bench_kernel.py``
-    measures both modes against sosfilt (``docs/performance.md``). The fast
+    (:mod:`dspeq._kernels`, "Fast path"); on CPUs with 128-bit
+    floating-point units a mono block takes a variant with fewer operations
+    where the design allows it (:attr:`loop` ``"fast-decoupled"``).
+    ``benchmarks/bench_kernel.py`` measures the modes against sosfilt
+    (``docs/performance.md``). The fast
     loop keeps its state between blocks in its own coordinates, so blocks
     whose lengths are multiples of :data:`dspeq._kernels.FAST_STEP` (8)
     frames give, bit for bit, the output of one call over the whole signal,
