@@ -944,6 +944,15 @@ def _tree(terms: list[str]) -> str:
     return terms[0]
 
 
+def _chain(products: list, mul: Callable, fma: Callable):
+    """The sum of the ``products`` (a, b) as one chain of fma: the decoupled loop's input sums."""
+    (a, b), *rest = products
+    total = mul(a, b)
+    for a, b in rest:
+        total = fma(a, b, total)
+    return total
+
+
 def _fused_chains(products: list, mul: Callable, fma: Callable, add: Callable):
     """The sum of the ``products`` (a, b) as two interleaved chains of fma, then added.
 
@@ -952,14 +961,7 @@ def _fused_chains(products: list, mul: Callable, fma: Callable, add: Callable):
     ``mul(a, b)`` starts a chain, ``fma(a, b, c)`` extends it, ``add(c0, c1)``
     joins the two.
     """
-    chains = []
-    for terms in (products[0::2], products[1::2]):
-        if terms:
-            (a, b), *rest = terms
-            chain = mul(a, b)
-            for a, b in rest:
-                chain = fma(a, b, chain)
-            chains.append(chain)
+    chains = [_chain(terms, mul, fma) for terms in (products[0::2], products[1::2]) if terms]
     return chains[0] if len(chains) == 1 else add(chains[0], chains[1])
 
 
@@ -1097,15 +1099,6 @@ def _fast_driver_source(name: str, steps: str, pcm: bool) -> str:
     return "\n".join(lines) + "\n"
 
 
-def _chain(products: list, mul: Callable, fma: Callable):
-    """The sum of the ``products`` (a, b) as one chain of fma: the decoupled loop's input sums."""
-    (a, b), *rest = products
-    total = mul(a, b)
-    for a, b in rest:
-        total = fma(a, b, total)
-    return total
-
-
 def _decoupled_sums(n_state: int, mul: Callable, fma: Callable, add: Callable, splat: Callable,
                     swap: Callable, carry: Callable, w: list, x: list, tables: dict) -> tuple[list, list]:
     """One substep of the decoupled mono loop, on scalars (source text) or LLVM vectors alike.
@@ -1240,6 +1233,11 @@ def _steps_intrinsic(emit: Callable, name: str):
     return intrinsic(steps)
 
 
+def _larger(builder, a, b):
+    """``a`` where ``a > b``, else ``b`` (NaN ``a`` included): the peak, as the scalar sources take it."""
+    return builder.select(builder.fcmp_ordered(">", a, b), a, b)
+
+
 def _loop_blocks(builder, name: str) -> tuple:
     """A loop's blocks ``(entry, head, body, done)``: the builder branches to ``head`` and is placed there."""
     entry = builder.block
@@ -1305,9 +1303,6 @@ def _decoupled_steps_intrinsic(n_sections: int):
             pair = builder.insert_element(ir.Constant(narrow, None), value, i32(0))
             return builder.fpext(lanes(builder, pair, [0, 0]), v2)
 
-        def larger(a, b):  # b where a is not larger, NaN a included
-            return builder.select(builder.fcmp_ordered(">", a, b), a, b)
-
         def carry(v):  # lane 0 plus -0.0 (itself, bit for bit), lane 1 plus lane 0
             order = ir.Constant(ir.VectorType(i32, 2), [2, 0])
             shifted = builder.shuffle_vector(v, v2([-0.0, -0.0]), order)
@@ -1325,8 +1320,9 @@ def _decoupled_steps_intrinsic(n_sections: int):
             builder.store(y, builder.bitcast(builder.gep(out_a.data, [i]), v4.as_pointer()),
                           align=8 if ot == d else 4)
             parts = [first, second] if ot == d else [y]
-            return after, [larger(builder.call(_vector_intrinsic(builder.module, "fabs", p.type, 1), [p]), q)
-                           for p, q in zip(parts, peak, strict=True)]
+            module = builder.module
+            magnitudes = [builder.call(_vector_intrinsic(module, "fabs", p.type, 1), [p]) for p in parts]
+            return after, [_larger(builder, m, q) for m, q in zip(magnitudes, peak, strict=True)]
 
         w0 = []
         for p in range(n_sections):
@@ -1367,7 +1363,7 @@ def _decoupled_steps_intrinsic(n_sections: int):
         for part in pk:
             for lane in range(part.type.count):
                 value = builder.extract_element(part, i32(lane))
-                result = larger(value if ot == d else builder.fpext(value, d), result)
+                result = _larger(builder, value if ot == d else builder.fpext(value, d), result)
         return result
     return _steps_intrinsic(codegen, "decoupled_steps")
 
@@ -1489,10 +1485,9 @@ def _mono_steps_intrinsic(n_sections: int):
         t = builder.fadd(builder.fadd(u, from_input), vsum(fma_s, dt, ustate))
         y_lo, y_hi = (builder.fadd(vsum(fma_h, ct[h], uh), hx[h]) for h in (0, 1))
         y = builder.shuffle_vector(y_lo, y_hi, ir.Constant(ir.VectorType(i32, width), list(range(width))))
-        def larger(a, b):  # b where a is not larger, NaN a included
-            return builder.select(builder.fcmp_ordered(">", a, b), a, b)
         # one peak vector for both halves: a register fewer in a loop that spills
-        pk_next = larger(larger(builder.call(fabs, [y_lo]), builder.call(fabs, [y_hi])), pk)
+        halves = _larger(builder, builder.call(fabs, [y_lo]), builder.call(fabs, [y_hi]))
+        pk_next = _larger(builder, halves, pk)
         yo = y if ot == d else builder.fptrunc(y, ir.VectorType(ot, width))
         builder.store(yo, builder.bitcast(builder.gep(out_a.data, [i]), yo.type.as_pointer()),
                       align=8 if ot == d else 4)
@@ -1506,7 +1501,7 @@ def _mono_steps_intrinsic(n_sections: int):
             builder.store(builder.extract_element(u, i32(m)), builder.gep(us_a.data, [i64(m)]))
         peak = ir.Constant(d, 0.0)
         for lane in range(half):
-            peak = larger(builder.extract_element(pk, i32(lane)), peak)
+            peak = _larger(builder, builder.extract_element(pk, i32(lane)), peak)
         return peak
     return _steps_intrinsic(codegen, "mono_steps")
 
